@@ -1,0 +1,195 @@
+// Package arms is the experiment itself: the study file model, its parsing
+// and validation, the canonical form behind version hashes, prompt rendering
+// and the entry rules for respondents. It knows nothing of HTTP or SQL, so the
+// science can be tested alone and reused from the command line.
+package arms
+
+import (
+	"encoding/json"
+	"fmt"
+	"strings"
+	"time"
+)
+
+// Arm kinds.
+const (
+	KindFixed   = "fixed"   // a fixed text, continue after a minimum reading time
+	KindMessage = "message" // one model-written message, generated once and stored
+	KindChat    = "chat"    // a capped conversation with the model
+)
+
+// Endpoint kinds.
+const (
+	EndpointOpenAI   = "openai"   // any OpenAI-compatible chat-completions service
+	EndpointScripted = "scripted" // offline, deterministic replies from the study file
+)
+
+// Covariate types.
+const (
+	TypeChoice  = "choice"
+	TypeInteger = "integer"
+	TypeText    = "text"
+)
+
+// Study is one study file, parsed and validated. Its canonical JSON form
+// (see Canonical) identifies a version of the study.
+type Study struct {
+	ID             string               `yaml:"id" json:"id"`
+	Title          string               `yaml:"title" json:"title"`
+	Language       string               `yaml:"language" json:"language"`
+	Covariates     []Covariate          `yaml:"covariates" json:"covariates"`
+	Strata         []string             `yaml:"strata" json:"strata"`
+	Allocation     Allocation           `yaml:"allocation" json:"allocation"`
+	Endpoints      map[string]*Endpoint `yaml:"endpoints" json:"endpoints"`
+	Arms           map[string]*Arm      `yaml:"arms" json:"arms"`
+	Return         string               `yaml:"return" json:"return"`
+	FrameAncestors []string             `yaml:"frame_ancestors" json:"frame_ancestors"`
+	// ParentOrigin is the origin the completion message is posted to when the
+	// respondent page runs inside a survey's iframe; "*" when empty.
+	ParentOrigin string `yaml:"parent_origin" json:"parent_origin"`
+	// Texts are respondent-facing strings that override the catalogue of
+	// the study's language (intro, disclosure, closing, buttons, errors).
+	Texts map[string]string `yaml:"texts" json:"texts"`
+
+	// ArmOrder is the order in which arms are declared in the file; arm
+	// codes follow it. Not part of the file's fields: it is recovered from
+	// the YAML and reflected in each arm's Code.
+	ArmOrder []string `yaml:"-" json:"-"`
+}
+
+// Covariate is a pre-treatment variable that the survey passes in the entry link.
+type Covariate struct {
+	Name     string   `yaml:"name" json:"name"`
+	Type     string   `yaml:"type" json:"type"`
+	Values   []string `yaml:"values" json:"values,omitempty"` // choice: the allowed values
+	Min      *int     `yaml:"min" json:"min,omitempty"`       // integer: inclusive bounds
+	Max      *int     `yaml:"max" json:"max,omitempty"`
+	MaxLen   int      `yaml:"max_len" json:"max_len,omitempty"` // text: in characters, default 200
+	Required bool     `yaml:"required" json:"required"`
+}
+
+// Allocation is the randomization scheme: arms with their ratios and the
+// block sizes to draw from within each stratum.
+type Allocation struct {
+	Blocks []int          `yaml:"blocks" json:"blocks"`
+	Arms   map[string]int `yaml:"arms" json:"arms"`
+}
+
+// Endpoint is a named model service.
+type Endpoint struct {
+	Kind        string   `yaml:"kind" json:"kind"`
+	BaseURL     string   `yaml:"base_url" json:"base_url,omitempty"`
+	Model       string   `yaml:"model" json:"model,omitempty"`
+	APIKeyEnv   string   `yaml:"api_key_env" json:"api_key_env,omitempty"` // name of the variable, never the key
+	Temperature *float64 `yaml:"temperature" json:"temperature,omitempty"`
+	TopP        *float64 `yaml:"top_p" json:"top_p,omitempty"`
+	MaxTokens   int      `yaml:"max_tokens" json:"max_tokens,omitempty"`
+	Seed        *int     `yaml:"seed" json:"seed,omitempty"`
+	Timeout     Duration `yaml:"timeout" json:"timeout,omitempty"`  // per attempt; default 60s
+	Attempts    int      `yaml:"attempts" json:"attempts,omitempty"` // default 4
+	// Scripted endpoints: how each reply is streamed.
+	Chunks int      `yaml:"chunks" json:"chunks,omitempty"`
+	Delay  Duration `yaml:"delay" json:"delay,omitempty"` // total per reply
+}
+
+// Arm is one treatment or control condition.
+type Arm struct {
+	Kind string `yaml:"kind" json:"kind"`
+	// Code is the neutral label sent back to the survey (A1, A2, ... in
+	// declaration order unless set).
+	Code       string `yaml:"code" json:"code"`
+	Text       string `yaml:"text" json:"text,omitempty"`               // fixed
+	MinSeconds int    `yaml:"min_seconds" json:"min_seconds,omitempty"` // fixed, message: reading time before Continue
+	Endpoint   string `yaml:"endpoint" json:"endpoint,omitempty"`
+	// System is the system prompt template (text/template over covariates and .vars).
+	System string `yaml:"system" json:"system,omitempty"`
+	// Prompt is the instruction that asks for a message arm's message, or
+	// for a chat arm's opening message when Opening is set.
+	Prompt  string            `yaml:"prompt" json:"prompt,omitempty"`
+	Opening bool              `yaml:"opening" json:"opening,omitempty"` // chat: the model writes first
+	Replies *Replies          `yaml:"replies" json:"replies,omitempty"`
+	Vars    map[string]string `yaml:"vars" json:"vars,omitempty"`
+	// Script lists the replies a scripted endpoint gives for this arm, in order.
+	Script []string `yaml:"script" json:"script,omitempty"`
+}
+
+// Replies are the limits of a chat arm's conversation.
+type Replies struct {
+	Min      int `yaml:"min" json:"min"`
+	Max      int `yaml:"max" json:"max"`
+	MinWords int `yaml:"min_words" json:"min_words,omitempty"`
+	MaxChars int `yaml:"max_chars" json:"max_chars"` // default 1500
+}
+
+// Duration is a time span written in the study file as "2s" or "500ms".
+type Duration time.Duration
+
+// UnmarshalYAML reads a duration string such as "1.5s".
+func (d *Duration) UnmarshalYAML(b []byte) error {
+	s := strings.Trim(strings.TrimSpace(string(b)), `"'`)
+	v, err := time.ParseDuration(s)
+	if err != nil {
+		return fmt.Errorf("%q is not a duration (write it like 2s or 500ms)", s)
+	}
+	if v < 0 {
+		return fmt.Errorf("duration %q is negative", s)
+	}
+	*d = Duration(v)
+	return nil
+}
+
+// MarshalJSON writes the duration in Go's notation ("2s"), so the canonical
+// form stays readable.
+func (d Duration) MarshalJSON() ([]byte, error) {
+	return json.Marshal(time.Duration(d).String())
+}
+
+// UnmarshalJSON reads what MarshalJSON wrote.
+func (d *Duration) UnmarshalJSON(b []byte) error {
+	var s string
+	if err := json.Unmarshal(b, &s); err != nil {
+		return fmt.Errorf("duration: %w", err)
+	}
+	v, err := time.ParseDuration(s)
+	if err != nil {
+		return fmt.Errorf("duration: %w", err)
+	}
+	*d = Duration(v)
+	return nil
+}
+
+// IsZero reports whether the duration is unset, so omitempty leaves it out.
+func (d Duration) IsZero() bool { return d == 0 }
+
+// Covariate returns the covariate called name.
+func (s *Study) Covariate(name string) (Covariate, bool) {
+	for _, c := range s.Covariates {
+		if c.Name == name {
+			return c, true
+		}
+	}
+	return Covariate{}, false
+}
+
+// ArmByCode returns the name of the arm whose code is code.
+func (s *Study) ArmByCode(code string) (string, bool) {
+	for name, a := range s.Arms {
+		if a.Code == code {
+			return name, true
+		}
+	}
+	return "", false
+}
+
+// RepliesOf returns an arm's reply limits; zero limits for arms that are not chats.
+func (a *Arm) RepliesOf() Replies {
+	if a.Replies == nil {
+		return Replies{}
+	}
+	return *a.Replies
+}
+
+// NeedsModel reports whether the arm has the model write any turn.
+func (a *Arm) NeedsModel() bool {
+	return a.Kind == KindMessage || a.Kind == KindChat
+}

@@ -1,0 +1,253 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"net/http"
+	"os"
+	"strings"
+	"time"
+
+	"trialogue/arms"
+	"trialogue/server"
+	"trialogue/store"
+	"trialogue/web"
+)
+
+// Config says where Trialogue runs; the study files say what it runs.
+type Config struct {
+	Addr            string        // listen address
+	DB              string        // SQLite file
+	Studies         []string      // study files
+	Demo            bool          // serve the stand-in survey pages and point returns at them
+	Synchronous     string        // SQLite synchronous pragma: FULL or NORMAL
+	LogFormat       string        // text or json
+	ShutdownTimeout time.Duration // how long replies in flight may take to finish on SIGTERM
+}
+
+// Main is the program wired together: tests build one with a temporary
+// database and call Run, just as the command does.
+type Main struct {
+	Config Config
+	Stdout io.Writer
+	Logger *slog.Logger
+
+	Store    *store.Store
+	Server   *server.Server
+	HTTP     *http.Server
+	Listener net.Listener
+	served   chan error
+}
+
+// stringList is a repeatable flag.
+type stringList []string
+
+func (l *stringList) String() string     { return strings.Join(*l, ",") }
+func (l *stringList) Set(v string) error { *l = append(*l, v); return nil }
+
+// ParseFlags reads the serve or demo command's flags.
+func (m *Main) ParseFlags(args []string, demo bool, stderr io.Writer) error {
+	name := "serve"
+	c := Config{Addr: "127.0.0.1:8080", DB: "trialogue.db", Synchronous: "FULL", LogFormat: "text", ShutdownTimeout: 30 * time.Second}
+	if demo {
+		name, c.Demo, c.DB = "demo", true, "trialogue-demo.db"
+	}
+	fs := flag.NewFlagSet("trialogue "+name, flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.StringVar(&c.Addr, "addr", c.Addr, "listen `address`")
+	fs.StringVar(&c.DB, "db", c.DB, "SQLite database `file` (created if missing)")
+	var studies stringList
+	fs.Var(&studies, "study", "study `file` to serve (repeatable)")
+	fs.StringVar(&c.Synchronous, "synchronous", c.Synchronous, "SQLite synchronous `mode`: FULL (durable across power loss) or NORMAL")
+	fs.StringVar(&c.LogFormat, "log-format", c.LogFormat, "log `format`: text or json")
+	fs.DurationVar(&c.ShutdownTimeout, "shutdown-timeout", c.ShutdownTimeout, "time replies in flight may take to finish on SIGTERM")
+	if err := fs.Parse(args); err != nil {
+		return err
+	}
+	if fs.NArg() > 0 {
+		return fmt.Errorf("unexpected argument %q (study files go after --study)", fs.Arg(0))
+	}
+	c.Studies = studies
+	if demo && len(c.Studies) == 0 {
+		c.Studies = []string{defaultDemoStudy()}
+	}
+	if len(c.Studies) == 0 {
+		return errors.New("no study to serve: give one with --study FILE")
+	}
+	if c.LogFormat != "text" && c.LogFormat != "json" {
+		return fmt.Errorf("--log-format must be text or json, not %q", c.LogFormat)
+	}
+	m.Config = c
+	return nil
+}
+
+// defaultDemoStudy finds the bundled demo study: in the source tree, or
+// where the container image puts it.
+func defaultDemoStudy() string {
+	for _, p := range []string{"testdata/demo-study.yaml", "/usr/share/trialogue/demo-study.yaml"} {
+		if _, err := os.Stat(p); err == nil {
+			return p
+		}
+	}
+	return "testdata/demo-study.yaml"
+}
+
+// Run opens the database, loads the studies and starts serving. It returns
+// once the server listens; Close stops it.
+func (m *Main) Run(ctx context.Context) error {
+	if m.Stdout == nil {
+		m.Stdout = io.Discard
+	}
+	if m.Logger == nil {
+		m.Logger = slog.New(slog.NewTextHandler(io.Discard, nil))
+	}
+	type loaded struct {
+		def *arms.Study
+		src []byte
+	}
+	var defs []loaded
+	for _, path := range m.Config.Studies {
+		def, src, err := arms.ParseFile(path)
+		if err != nil {
+			return err
+		}
+		defs = append(defs, loaded{def, src})
+	}
+	assets, err := web.Load()
+	if err != nil {
+		return err
+	}
+	ln, err := net.Listen("tcp", m.Config.Addr)
+	if err != nil {
+		return fmt.Errorf("listen on %s: %w", m.Config.Addr, err)
+	}
+	m.Listener = ln
+	st, err := store.Open(ctx, m.Config.DB, store.Options{Synchronous: m.Config.Synchronous})
+	if err != nil {
+		ln.Close()
+		return err
+	}
+	m.Store = st
+	m.Server = server.New(st, assets, server.Config{Logger: m.Logger, Demo: m.Config.Demo})
+	hostSite, frameSite := server.DemoSites(ln.Addr())
+	for _, d := range defs {
+		if m.Config.Demo {
+			// The demo returns respondents to its own stand-in survey page.
+			d.def.Return = hostSite + "/demo/done?rid={{.rid}}&code={{.code}}&arm={{.arm_code}}&study={{.study}}"
+			d.def.ParentOrigin = hostSite
+		}
+		if _, err := m.Server.AddStudy(ctx, d.def, d.src); err != nil {
+			m.Close()
+			return err
+		}
+	}
+	m.HTTP = &http.Server{
+		Handler:           m.Server.Handler(),
+		ReadHeaderTimeout: 10 * time.Second,
+		ReadTimeout:       30 * time.Second,
+		IdleTimeout:       120 * time.Second,
+		MaxHeaderBytes:    32 << 10,
+		ErrorLog:          slog.NewLogLogger(m.Logger.Handler(), slog.LevelWarn),
+	}
+	m.served = make(chan error, 1)
+	go func() { m.served <- m.HTTP.Serve(ln) }()
+	m.Logger.Info("serving", slog.String("addr", ln.Addr().String()), slog.String("db", m.Config.DB), slog.Int("studies", len(defs)))
+	if m.Config.Demo {
+		d := defs[0].def
+		ex := d.Example()
+		fmt.Fprintf(m.Stdout, "Trialogue demo: study %q (%s), scripted responder, database %s\n\n", d.ID, d.Title, m.Config.DB)
+		fmt.Fprintf(m.Stdout, "  Stand-in survey page (embeds the respondent page in an iframe):\n    %s/demo/host\n\n", hostSite)
+		fmt.Fprintf(m.Stdout, "  A respondent link (open it directly):\n    %s/s/%s?rid=demo-%d", frameSite, d.ID, time.Now().Unix()%100000)
+		for _, c := range d.Covariates {
+			if v := ex.Covariates[c.Name]; v != "" && c.Type != arms.TypeText {
+				fmt.Fprintf(m.Stdout, "&%s=%s", c.Name, v)
+			}
+		}
+		fmt.Fprint(m.Stdout, "\n\n")
+	} else {
+		fmt.Fprintf(m.Stdout, "Trialogue serving %d stud(ies) on http://%s\n\n", len(defs), ln.Addr())
+	}
+	fmt.Fprint(m.Stdout, cautions)
+	return nil
+}
+
+// Wait blocks until ctx ends (a signal) or the server fails.
+func (m *Main) Wait(ctx context.Context) error {
+	select {
+	case <-ctx.Done():
+		return nil
+	case err := <-m.served:
+		if errors.Is(err, http.ErrServerClosed) {
+			return nil
+		}
+		return err
+	}
+}
+
+// Close stops taking requests, lets those in flight finish up to the
+// shutdown timeout, and closes the database.
+func (m *Main) Close() error {
+	var errs []error
+	if m.HTTP != nil {
+		ctx, cancel := context.WithTimeout(context.Background(), m.Config.ShutdownTimeout)
+		defer cancel()
+		if err := m.HTTP.Shutdown(ctx); err != nil {
+			errs = append(errs, fmt.Errorf("shutdown: %w", err))
+		}
+	} else if m.Listener != nil {
+		m.Listener.Close()
+	}
+	if m.Store != nil {
+		errs = append(errs, m.Store.Close())
+	}
+	return errors.Join(errs...)
+}
+
+// cautions are shown whenever Trialogue starts serving.
+const cautions = `Before fielding a study with real people:
+  - run it only with ethics-board (IRB) approval and the participants' informed consent;
+  - tell respondents honestly that replies come from an AI model, and debrief them afterwards;
+  - respondents type free text that can hold personal details: follow your data-protection rules;
+  - do not use Trialogue to target real voters or patients outside an approved study;
+  - local rules and your board's judgement come first: Trialogue records, it does not decide.
+
+`
+
+func runServe(ctx context.Context, args []string, stdout, stderr *os.File, demo bool) int {
+	m := &Main{Stdout: stdout}
+	if err := m.ParseFlags(args, demo, stderr); err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return exitOK
+		}
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return exitUsage
+	}
+	var h slog.Handler = slog.NewTextHandler(stderr, nil)
+	if m.Config.LogFormat == "json" {
+		h = slog.NewJSONHandler(stderr, nil)
+	}
+	m.Logger = slog.New(h)
+	if err := m.Run(ctx); err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		var probs *arms.Problems
+		if errors.As(err, &probs) {
+			return exitUsage
+		}
+		return exitFail
+	}
+	err := m.Wait(ctx)
+	m.Logger.Info("shutting down")
+	if cerr := m.Close(); cerr != nil {
+		err = errors.Join(err, cerr)
+	}
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return exitFail
+	}
+	return exitOK
+}

@@ -1,0 +1,187 @@
+package store
+
+import (
+	"context"
+	"database/sql"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"time"
+
+	"trialogue/arms"
+	"trialogue/arms/codes"
+)
+
+// Session is one respondent's way through a study.
+type Session struct {
+	ID         int64
+	StudyID    string
+	RID        string
+	Token      string // the respondent's capability: never log it
+	Version    int
+	StudyHash  string
+	Stratum    string
+	Slot       int // position in the stratum's allocation sequence
+	Arm        string
+	ArmCode    string
+	Covariates map[string]string
+	CreatedAt  time.Time
+	FinishedAt time.Time // zero while unfinished
+}
+
+// Finished reports whether the respondent has continued back to the survey.
+func (s Session) Finished() bool { return !s.FinishedAt.IsZero() }
+
+// Respondent returns the session's respondent as the study sees it.
+func (s Session) Respondent() arms.Respondent {
+	return arms.Respondent{RID: s.RID, Covariates: s.Covariates}
+}
+
+// Assigner gives the arm of a stratum's slot: a pure function of the
+// study's seed, so the store only has to hand out slot numbers.
+type Assigner func(stratum string, slot int) (arm, armCode string)
+
+// Enter returns rid's session in the study, creating it when rid is new:
+// one transaction takes the stratum's next slot, so concurrent entries
+// never share or skip one. created reports whether the session is new.
+func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
+	tx, err := s.w.BeginTx(ctx, nil)
+	if err != nil {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	defer rollback(tx)
+	sess, err = sessionWhere(ctx, tx, `s.study_id = ? AND s.rid = ?`, sv.ID, r.RID)
+	if err == nil {
+		return sess, false, nil
+	}
+	if !errors.Is(err, ErrNotFound) {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	var slot int
+	err = tx.QueryRowContext(ctx, `SELECT next_slot FROM strata WHERE study_id = ? AND stratum = ?`, sv.ID, stratum).Scan(&slot)
+	if err != nil && !errors.Is(err, sql.ErrNoRows) {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	arm, code := assign(stratum, slot)
+	covs, err := json.Marshal(r.Covariates)
+	if err != nil {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	now := s.now()
+	sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
+		Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now}
+	res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at)
+		VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
+		sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now))
+	if err != nil {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	if sess.ID, err = res.LastInsertId(); err != nil {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	if _, err = tx.ExecContext(ctx, `INSERT INTO strata (study_id, stratum, next_slot) VALUES (?, ?, ?)
+		ON CONFLICT (study_id, stratum) DO UPDATE SET next_slot = excluded.next_slot`, sv.ID, stratum, slot+1); err != nil {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	if err := tx.Commit(); err != nil {
+		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
+	}
+	return sess, true, nil
+}
+
+// SessionByToken returns the session a respondent token opens.
+func (s *Store) SessionByToken(ctx context.Context, token string) (Session, error) {
+	return sessionWhere(ctx, s.r, `s.token = ?`, token)
+}
+
+// SessionByRID returns rid's session in a study.
+func (s *Store) SessionByRID(ctx context.Context, study, rid string) (Session, error) {
+	return sessionWhere(ctx, s.r, `s.study_id = ? AND s.rid = ?`, study, rid)
+}
+
+// Sessions lists a study's sessions in order of entry.
+func (s *Store) Sessions(ctx context.Context, study string) ([]Session, error) {
+	rows, err := s.r.QueryContext(ctx, sessionSelect+` WHERE s.study_id = ? ORDER BY s.id`, study)
+	if err != nil {
+		return nil, fmt.Errorf("sessions of %q: %w", study, err)
+	}
+	defer rows.Close()
+	var out []Session
+	for rows.Next() {
+		sess, err := scanSession(rows)
+		if err != nil {
+			return nil, fmt.Errorf("sessions of %q: %w", study, err)
+		}
+		out = append(out, sess)
+	}
+	if err := rows.Err(); err != nil {
+		return nil, fmt.Errorf("sessions of %q: %w", study, err)
+	}
+	return out, nil
+}
+
+// Finish marks the session finished; finishing twice keeps the first time.
+func (s *Store) Finish(ctx context.Context, id int64) (time.Time, error) {
+	tx, err := s.w.BeginTx(ctx, nil)
+	if err != nil {
+		return time.Time{}, fmt.Errorf("finish session: %w", err)
+	}
+	defer rollback(tx)
+	if _, err := tx.ExecContext(ctx, `UPDATE sessions SET finished_at = ? WHERE id = ? AND finished_at IS NULL`, fmtTime(s.now()), id); err != nil {
+		return time.Time{}, fmt.Errorf("finish session: %w", err)
+	}
+	var at string
+	if err := tx.QueryRowContext(ctx, `SELECT finished_at FROM sessions WHERE id = ?`, id).Scan(&at); err != nil {
+		if errors.Is(err, sql.ErrNoRows) {
+			return time.Time{}, fmt.Errorf("finish session: %w", ErrNotFound)
+		}
+		return time.Time{}, fmt.Errorf("finish session: %w", err)
+	}
+	if err := tx.Commit(); err != nil {
+		return time.Time{}, fmt.Errorf("finish session: %w", err)
+	}
+	return parseTime(at)
+}
+
+const sessionSelect = `SELECT s.id, s.study_id, s.rid, s.token, s.version, s.study_hash, s.stratum, s.slot, s.arm, s.arm_code,
+	s.covariates, s.created_at, s.finished_at FROM sessions s`
+
+type querier interface {
+	QueryRowContext(ctx context.Context, query string, args ...any) *sql.Row
+}
+
+type scanner interface{ Scan(dest ...any) error }
+
+func sessionWhere(ctx context.Context, q querier, where string, args ...any) (Session, error) {
+	sess, err := scanSession(q.QueryRowContext(ctx, sessionSelect+" WHERE "+where, args...))
+	if errors.Is(err, sql.ErrNoRows) {
+		return Session{}, fmt.Errorf("session: %w", ErrNotFound)
+	}
+	if err != nil {
+		return Session{}, fmt.Errorf("session: %w", err)
+	}
+	return sess, nil
+}
+
+func scanSession(row scanner) (Session, error) {
+	var sess Session
+	var covs, created string
+	var finished sql.NullString
+	if err := row.Scan(&sess.ID, &sess.StudyID, &sess.RID, &sess.Token, &sess.Version, &sess.StudyHash, &sess.Stratum,
+		&sess.Slot, &sess.Arm, &sess.ArmCode, &covs, &created, &finished); err != nil {
+		return Session{}, err
+	}
+	if err := json.Unmarshal([]byte(covs), &sess.Covariates); err != nil {
+		return Session{}, fmt.Errorf("covariates of session %d: %w", sess.ID, err)
+	}
+	var err error
+	if sess.CreatedAt, err = parseTime(created); err != nil {
+		return Session{}, err
+	}
+	if finished.Valid {
+		if sess.FinishedAt, err = parseTime(finished.String); err != nil {
+			return Session{}, err
+		}
+	}
+	return sess, nil
+}

@@ -1,0 +1,205 @@
+package store
+
+import (
+	"context"
+	"database/sql"
+	"fmt"
+	"time"
+
+	"trialogue/arms"
+	"trialogue/arms/codes"
+)
+
+// Roles of a turn.
+const (
+	RoleAssistant  = "assistant"
+	RoleRespondent = "respondent"
+)
+
+// Turn is one message of a conversation, with what an auditor needs to
+// know about how it came to be.
+type Turn struct {
+	SessionID        int64
+	Index            int // 0-based position in the session
+	Role             string
+	Text             string
+	ClientID         string // respondent turns: the page's id for this send
+	StartedAt        time.Time
+	CreatedAt        time.Time
+	LatencyMS        int64 // model turns: request to last chunk, retries included
+	ModelRequested   string
+	ModelReported    string
+	Fingerprint      string
+	Params           string // JSON of the model parameters
+	PromptTokens     int
+	CompletionTokens int
+	Retries          int
+	FinishReason     string
+	SystemSHA256     string
+	RequestSHA256    string
+	TextSHA256       string
+	StudyHash        string
+}
+
+// Progress summarises turns for the arm's rules.
+func Progress(arm *arms.Arm, turns []Turn, finished bool) arms.Progress {
+	var p arms.Progress
+	for _, t := range turns {
+		if t.Role == RoleRespondent {
+			p.Replies++
+		} else {
+			p.Assistant++
+		}
+	}
+	p.Owed = arm.Owed(p.Replies, p.Assistant)
+	p.Finished = finished
+	return p
+}
+
+// Turns lists a session's turns in order.
+func (s *Store) Turns(ctx context.Context, sessionID int64) ([]Turn, error) {
+	return turns(ctx, s.r, sessionID)
+}
+
+type queryer interface {
+	QueryContext(ctx context.Context, query string, args ...any) (*sql.Rows, error)
+}
+
+const turnSelect = `SELECT session_id, idx, role, text, COALESCE(client_id, ''), started_at, created_at, COALESCE(latency_ms, 0),
+	COALESCE(model_requested, ''), COALESCE(model_reported, ''), COALESCE(fingerprint, ''), COALESCE(params, ''),
+	COALESCE(prompt_tokens, 0), COALESCE(completion_tokens, 0), COALESCE(retries, 0), COALESCE(finish_reason, ''),
+	COALESCE(system_sha256, ''), COALESCE(request_sha256, ''), text_sha256, study_hash FROM turns`
+
+func turns(ctx context.Context, q queryer, sessionID int64) ([]Turn, error) {
+	rows, err := q.QueryContext(ctx, turnSelect+` WHERE session_id = ? ORDER BY idx`, sessionID)
+	if err != nil {
+		return nil, fmt.Errorf("turns of session %d: %w", sessionID, err)
+	}
+	defer rows.Close()
+	var out []Turn
+	for rows.Next() {
+		var t Turn
+		var started, created string
+		if err := rows.Scan(&t.SessionID, &t.Index, &t.Role, &t.Text, &t.ClientID, &started, &created, &t.LatencyMS,
+			&t.ModelRequested, &t.ModelReported, &t.Fingerprint, &t.Params, &t.PromptTokens, &t.CompletionTokens,
+			&t.Retries, &t.FinishReason, &t.SystemSHA256, &t.RequestSHA256, &t.TextSHA256, &t.StudyHash); err != nil {
+			return nil, fmt.Errorf("turns of session %d: %w", sessionID, err)
+		}
+		if t.StartedAt, err = parseTime(started); err != nil {
+			return nil, err
+		}
+		if t.CreatedAt, err = parseTime(created); err != nil {
+			return nil, err
+		}
+		out = append(out, t)
+	}
+	if err := rows.Err(); err != nil {
+		return nil, fmt.Errorf("turns of session %d: %w", sessionID, err)
+	}
+	return out, nil
+}
+
+// AddReply commits a respondent's reply. A client id already stored returns
+// the stored turn with existed set and changes nothing, so a resent request
+// makes one turn. check sees the session's turns inside the transaction and
+// may refuse the reply.
+func (s *Store) AddReply(ctx context.Context, sess Session, text, clientID string, check func(done []Turn) error) (t Turn, existed bool, err error) {
+	tx, err := s.w.BeginTx(ctx, nil)
+	if err != nil {
+		return Turn{}, false, fmt.Errorf("add reply: %w", err)
+	}
+	defer rollback(tx)
+	done, err := turns(ctx, tx, sess.ID)
+	if err != nil {
+		return Turn{}, false, fmt.Errorf("add reply: %w", err)
+	}
+	if clientID != "" {
+		for _, d := range done {
+			if d.Role == RoleRespondent && d.ClientID == clientID {
+				return d, true, nil
+			}
+		}
+	}
+	if err := check(done); err != nil {
+		return Turn{}, false, err
+	}
+	now := s.now()
+	t = Turn{SessionID: sess.ID, Index: len(done), Role: RoleRespondent, Text: text, ClientID: clientID,
+		StartedAt: now, CreatedAt: now, TextSHA256: codes.SHA256Hex([]byte(text)), StudyHash: sess.StudyHash}
+	if err := insertTurn(ctx, tx, t); err != nil {
+		return Turn{}, false, fmt.Errorf("add reply: %w", err)
+	}
+	if err := tx.Commit(); err != nil {
+		return Turn{}, false, fmt.Errorf("add reply: %w", err)
+	}
+	return t, false, nil
+}
+
+// AddModelTurn commits a model turn at index t.Index. If that index is taken
+// (another request answered first) it returns ErrConflict and changes nothing.
+func (s *Store) AddModelTurn(ctx context.Context, t Turn) (Turn, error) {
+	t.Role = RoleAssistant
+	t.CreatedAt = s.now()
+	t.TextSHA256 = codes.SHA256Hex([]byte(t.Text))
+	tx, err := s.w.BeginTx(ctx, nil)
+	if err != nil {
+		return Turn{}, fmt.Errorf("add model turn: %w", err)
+	}
+	defer rollback(tx)
+	var n int
+	if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM turns WHERE session_id = ?`, t.SessionID).Scan(&n); err != nil {
+		return Turn{}, fmt.Errorf("add model turn: %w", err)
+	}
+	if n != t.Index {
+		return Turn{}, fmt.Errorf("add model turn %d of session %d (it has %d turns): %w", t.Index, t.SessionID, n, ErrConflict)
+	}
+	if err := insertTurn(ctx, tx, t); err != nil {
+		return Turn{}, fmt.Errorf("add model turn: %w", err)
+	}
+	if err := tx.Commit(); err != nil {
+		return Turn{}, fmt.Errorf("add model turn: %w", err)
+	}
+	return t, nil
+}
+
+func insertTurn(ctx context.Context, tx *sql.Tx, t Turn) error {
+	_, err := tx.ExecContext(ctx, `INSERT INTO turns (session_id, idx, role, text, client_id, started_at, created_at, latency_ms,
+		model_requested, model_reported, fingerprint, params, prompt_tokens, completion_tokens, retries, finish_reason,
+		system_sha256, request_sha256, text_sha256, study_hash) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
+		t.SessionID, t.Index, t.Role, t.Text, nullString(t.ClientID), fmtTime(t.StartedAt), fmtTime(t.CreatedAt), nullInt(t.LatencyMS, t.Role),
+		nullString(t.ModelRequested), nullString(t.ModelReported), nullString(t.Fingerprint), nullString(t.Params),
+		nullInt(int64(t.PromptTokens), t.Role), nullInt(int64(t.CompletionTokens), t.Role), nullInt(int64(t.Retries), t.Role),
+		nullString(t.FinishReason), nullString(t.SystemSHA256), nullString(t.RequestSHA256), t.TextSHA256, t.StudyHash)
+	return err
+}
+
+// RecordFailure logs a model call that failed after every retry.
+func (s *Store) RecordFailure(ctx context.Context, sessionID int64, kind string, status, attempts int) error {
+	_, err := s.w.ExecContext(ctx, `INSERT INTO model_failures (session_id, at, kind, status, attempts) VALUES (?, ?, ?, ?, ?)`,
+		sessionID, fmtTime(s.now()), kind, status, attempts)
+	if err != nil {
+		return fmt.Errorf("record model failure: %w", err)
+	}
+	return nil
+}
+
+// LastFailure returns when a session's model call last failed after every
+// retry; the zero time if never.
+func (s *Store) LastFailure(ctx context.Context, sessionID int64) (time.Time, error) {
+	var at sql.NullString
+	if err := s.r.QueryRowContext(ctx, `SELECT MAX(at) FROM model_failures WHERE session_id = ?`, sessionID).Scan(&at); err != nil {
+		return time.Time{}, fmt.Errorf("model failures: %w", err)
+	}
+	if !at.Valid {
+		return time.Time{}, nil
+	}
+	return parseTime(at.String)
+}
+
+func nullString(v string) sql.NullString { return sql.NullString{String: v, Valid: v != ""} }
+
+// nullInt stores model-turn figures and leaves them NULL on respondent turns.
+func nullInt(v int64, role string) sql.NullInt64 {
+	return sql.NullInt64{Int64: v, Valid: role == RoleAssistant}
+}
+
