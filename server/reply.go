@@ -51,33 +51,23 @@ func (s *Server) handleReply(w http.ResponseWriter, r *http.Request) {
 	}
 	unlock := s.locks.lock(req.sess.ID)
 	defer unlock()
-	sess, err := s.store.SessionByToken(r.Context(), req.sess.Token)
-	if err != nil {
-		s.fail(w, r, err)
-		return
-	}
-	req.sess = sess
-	arm := req.study.Def.Arms[sess.Arm]
-	turn, existed, err := s.store.AddReply(r.Context(), sess, body.Text, body.ClientID, func(done []store.Turn) error {
-		return arm.CheckReply(store.Progress(arm, done, sess.Finished()), body.Text)
+	arm := req.study.Def.Arms[req.sess.Arm]
+	added, err := s.store.AddReply(r.Context(), req.sess, body.Text, body.ClientID, func(done []store.Turn, finished bool) error {
+		return arm.CheckReply(store.Progress(arm, done, finished), body.Text)
 	})
 	if err != nil {
 		s.fail(w, r, err)
 		return
 	}
-	if existed {
+	turns := added.Turns
+	if added.Existed {
 		// the same send again: answer with what that send got, or finish it
-		turns, err := s.store.Turns(r.Context(), sess.ID)
-		if err != nil {
-			s.fail(w, r, err)
-			return
-		}
-		if turn.Index+1 < len(turns) && turns[turn.Index+1].Role == store.RoleAssistant {
-			s.answer(w, r, req, turns[turn.Index+1], 0, nil)
+		if i := added.Turn.Index + 1; i < len(turns) && turns[i].Role == store.RoleAssistant {
+			s.answer(w, r, req, turns, turns[i], 0, nil)
 			return
 		}
 	}
-	s.respond(w, r, req)
+	s.respond(w, r, req, turns)
 }
 
 // handleResume has the model write the turn the session is owed, if any: a
@@ -90,17 +80,17 @@ func (s *Server) handleResume(w http.ResponseWriter, r *http.Request) {
 	req := fromContext(r.Context())
 	unlock := s.locks.lock(req.sess.ID)
 	defer unlock()
-	s.respond(w, r, req)
-}
-
-// respond writes the owed model turn and answers, streaming when asked.
-// The caller holds the session's lock.
-func (s *Server) respond(w http.ResponseWriter, r *http.Request, req *request) {
 	turns, err := s.store.Turns(r.Context(), req.sess.ID)
 	if err != nil {
 		s.fail(w, r, err)
 		return
 	}
+	s.respond(w, r, req, turns)
+}
+
+// respond writes the owed model turn and answers, streaming when asked.
+// The caller holds the session's lock and passes the session's turns.
+func (s *Server) respond(w http.ResponseWriter, r *http.Request, req *request, turns []store.Turn) {
 	arm := req.study.Def.Arms[req.sess.Arm]
 	stream := strings.Contains(r.Header.Get("Accept"), "text/event-stream")
 	var ev *eventWriter
@@ -152,16 +142,12 @@ func (s *Server) respond(w http.ResponseWriter, r *http.Request, req *request) {
 		writeJSON(w, http.StatusServiceUnavailable, answer)
 		return
 	}
-	s.answer(w, r, req, t, res.ModelTime, ev)
+	s.answer(w, r, req, append(turns, t), t, res.ModelTime, ev)
 }
 
-// answer sends a stored model turn with the new state.
-func (s *Server) answer(w http.ResponseWriter, r *http.Request, req *request, t store.Turn, modelTime time.Duration, ev *eventWriter) {
-	st, _, err := s.loadState(r, req)
-	if err != nil {
-		s.fail(w, r, err)
-		return
-	}
+// answer sends a stored model turn with the session's state after it.
+func (s *Server) answer(w http.ResponseWriter, r *http.Request, req *request, turns []store.Turn, t store.Turn, modelTime time.Duration, ev *eventWriter) {
+	st := s.state(req, turns, time.Time{})
 	a := replyAnswer{Reply: t.Text, State: st, ModelMS: modelTime.Milliseconds()}
 	if ev != nil {
 		ev.event("done", a)

@@ -45,63 +45,62 @@ type Assigner func(stratum string, slot int) (arm, armCode string)
 // one transaction takes the stratum's next slot, so concurrent entries
 // never share or skip one. created reports whether the session is new.
 func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
-	tx, err := s.w.BeginTx(ctx, nil)
-	if err != nil {
-		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
-	}
-	defer rollback(tx)
-	sess, err = sessionWhere(ctx, tx, `s.study_id = ? AND s.rid = ?`, sv.ID, r.RID)
-	if err == nil {
-		return sess, false, nil
-	}
-	if !errors.Is(err, ErrNotFound) {
-		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
-	}
-	var slot int
-	err = tx.QueryRowContext(ctx, `SELECT next_slot FROM strata WHERE study_id = ? AND stratum = ?`, sv.ID, stratum).Scan(&slot)
-	if err != nil && !errors.Is(err, sql.ErrNoRows) {
-		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
-	}
-	arm, code := assign(stratum, slot)
 	covs, err := json.Marshal(r.Covariates)
 	if err != nil {
 		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
 	}
-	now := s.now()
-	sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
-		Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now}
-	res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at)
-		VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
-		sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now))
+	err = s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		var err error
+		sess, err = sessionWhere(ctx, tx, `s.study_id = ? AND s.rid = ?`, sv.ID, r.RID)
+		if err == nil {
+			created = false
+			return nil
+		}
+		if !errors.Is(err, ErrNotFound) {
+			return err
+		}
+		var slot int
+		err = tx.QueryRowContext(ctx, `SELECT next_slot FROM strata WHERE study_id = ? AND stratum = ?`, sv.ID, stratum).Scan(&slot)
+		if err != nil && !errors.Is(err, sql.ErrNoRows) {
+			return err
+		}
+		arm, code := assign(stratum, slot)
+		now := s.now()
+		sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
+			Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now}
+		res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at)
+			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
+			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now))
+		if err != nil {
+			return err
+		}
+		if sess.ID, err = res.LastInsertId(); err != nil {
+			return err
+		}
+		_, err = tx.ExecContext(ctx, `INSERT INTO strata (study_id, stratum, next_slot) VALUES (?, ?, ?)
+			ON CONFLICT (study_id, stratum) DO UPDATE SET next_slot = excluded.next_slot`, sv.ID, stratum, slot+1)
+		created = err == nil
+		return err
+	})
 	if err != nil {
 		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
 	}
-	if sess.ID, err = res.LastInsertId(); err != nil {
-		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
-	}
-	if _, err = tx.ExecContext(ctx, `INSERT INTO strata (study_id, stratum, next_slot) VALUES (?, ?, ?)
-		ON CONFLICT (study_id, stratum) DO UPDATE SET next_slot = excluded.next_slot`, sv.ID, stratum, slot+1); err != nil {
-		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
-	}
-	if err := tx.Commit(); err != nil {
-		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
-	}
-	return sess, true, nil
+	return sess, created, nil
 }
 
 // SessionByToken returns the session a respondent token opens.
 func (s *Store) SessionByToken(ctx context.Context, token string) (Session, error) {
-	return sessionWhere(ctx, s.r, `s.token = ?`, token)
+	return sessionWhere(ctx, s.rs, `s.token = ?`, token)
 }
 
 // SessionByRID returns rid's session in a study.
 func (s *Store) SessionByRID(ctx context.Context, study, rid string) (Session, error) {
-	return sessionWhere(ctx, s.r, `s.study_id = ? AND s.rid = ?`, study, rid)
+	return sessionWhere(ctx, s.rs, `s.study_id = ? AND s.rid = ?`, study, rid)
 }
 
 // Sessions lists a study's sessions in order of entry.
 func (s *Store) Sessions(ctx context.Context, study string) ([]Session, error) {
-	rows, err := s.r.QueryContext(ctx, sessionSelect+` WHERE s.study_id = ? ORDER BY s.id`, study)
+	rows, err := s.rs.QueryContext(ctx, sessionSelect+` WHERE s.study_id = ? ORDER BY s.id`, study)
 	if err != nil {
 		return nil, fmt.Errorf("sessions of %q: %w", study, err)
 	}
@@ -122,22 +121,18 @@ func (s *Store) Sessions(ctx context.Context, study string) ([]Session, error) {
 
 // Finish marks the session finished; finishing twice keeps the first time.
 func (s *Store) Finish(ctx context.Context, id int64) (time.Time, error) {
-	tx, err := s.w.BeginTx(ctx, nil)
-	if err != nil {
-		return time.Time{}, fmt.Errorf("finish session: %w", err)
-	}
-	defer rollback(tx)
-	if _, err := tx.ExecContext(ctx, `UPDATE sessions SET finished_at = ? WHERE id = ? AND finished_at IS NULL`, fmtTime(s.now()), id); err != nil {
-		return time.Time{}, fmt.Errorf("finish session: %w", err)
-	}
 	var at string
-	if err := tx.QueryRowContext(ctx, `SELECT finished_at FROM sessions WHERE id = ?`, id).Scan(&at); err != nil {
-		if errors.Is(err, sql.ErrNoRows) {
-			return time.Time{}, fmt.Errorf("finish session: %w", ErrNotFound)
+	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		if _, err := tx.ExecContext(ctx, `UPDATE sessions SET finished_at = ? WHERE id = ? AND finished_at IS NULL`, fmtTime(s.now()), id); err != nil {
+			return err
 		}
-		return time.Time{}, fmt.Errorf("finish session: %w", err)
-	}
-	if err := tx.Commit(); err != nil {
+		err := tx.QueryRowContext(ctx, `SELECT finished_at FROM sessions WHERE id = ?`, id).Scan(&at)
+		if errors.Is(err, sql.ErrNoRows) {
+			return ErrNotFound
+		}
+		return err
+	})
+	if err != nil {
 		return time.Time{}, fmt.Errorf("finish session: %w", err)
 	}
 	return parseTime(at)

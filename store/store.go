@@ -32,8 +32,10 @@ var (
 
 // Store is a Trialogue database: one SQLite file in WAL mode.
 type Store struct {
-	w *sql.DB // the single writer connection: BEGIN IMMEDIATE, so writers queue instead of deadlocking
-	r *sql.DB // readers, which WAL lets run beside the writer
+	w  *sql.DB // the single writer connection: BEGIN IMMEDIATE, so writers queue instead of deadlocking
+	r  *sql.DB // readers, which WAL lets run beside the writer
+	rs *stmts  // the readers' prepared statements
+	wr *writer // groups concurrent writes into shared commits
 
 	// Now is the clock, a seam for tests.
 	Now func() time.Time
@@ -69,7 +71,9 @@ func Open(ctx context.Context, path string, opt Options) (*Store, error) {
 	if err != nil {
 		return nil, fmt.Errorf("open database %q: %w", path, err)
 	}
-	w.SetMaxOpenConns(1)
+	// One connection writes (the writer goroutine); a second one only prepares
+	// statements, which a transaction holding the first cannot do.
+	w.SetMaxOpenConns(2)
 	r, err := sql.Open("sqlite", dsn("deferred"))
 	if err != nil {
 		w.Close()
@@ -85,6 +89,8 @@ func Open(ctx context.Context, path string, opt Options) (*Store, error) {
 		s.Close()
 		return nil, fmt.Errorf("open database %q: %w", path, err)
 	}
+	s.wr = newWriter(w)
+	s.rs = newStmts(r)
 	return s, nil
 }
 
@@ -128,8 +134,15 @@ func (s *Store) Ready(ctx context.Context) error {
 	return nil
 }
 
-// Close closes the database.
+// Close waits for writes under way and closes the database. Writes after
+// Close fail with ErrClosed.
 func (s *Store) Close() error {
+	if s.wr != nil {
+		s.wr.close()
+	}
+	if s.rs != nil {
+		s.rs.close()
+	}
 	return errors.Join(s.w.Close(), s.r.Close())
 }
 
@@ -144,13 +157,6 @@ func parseTime(v string) (time.Time, error) {
 		return time.Time{}, fmt.Errorf("stored time %q: %w", v, err)
 	}
 	return t, nil
-}
-
-// rollback ends a transaction that was not committed; after a commit it is a no-op.
-func rollback(tx *sql.Tx) {
-	if err := tx.Rollback(); err != nil && !errors.Is(err, sql.ErrTxDone) {
-		slog.Warn("rollback failed", slog.Any("err", err))
-	}
 }
 
 var _ io.Closer = (*Store)(nil)

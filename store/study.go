@@ -29,33 +29,28 @@ func (s *Store) RegisterStudy(ctx context.Context, st *arms.Study, source []byte
 		return StudyVersion{}, err
 	}
 	hash := codes.SHA256Hex(canonical)
-	tx, err := s.w.BeginTx(ctx, nil)
-	if err != nil {
-		return StudyVersion{}, fmt.Errorf("register study %q: %w", st.ID, err)
-	}
-	defer rollback(tx)
 	now := fmtTime(s.now())
 	sv := StudyVersion{ID: st.ID, Hash: hash}
-	err = tx.QueryRowContext(ctx, `SELECT secret, seed FROM studies WHERE id = ?`, st.ID).Scan(&sv.Secret, &sv.Seed)
-	if errors.Is(err, sql.ErrNoRows) {
-		sv.Secret, sv.Seed = codes.NewSecret(), codes.NewSecret()
-		_, err = tx.ExecContext(ctx, `INSERT INTO studies (id, secret, seed, created_at) VALUES (?, ?, ?, ?)`, st.ID, sv.Secret, sv.Seed, now)
-	}
-	if err != nil {
-		return StudyVersion{}, fmt.Errorf("register study %q: %w", st.ID, err)
-	}
-	err = tx.QueryRowContext(ctx, `SELECT version FROM study_versions WHERE study_id = ? AND hash = ?`, st.ID, hash).Scan(&sv.Version)
-	if errors.Is(err, sql.ErrNoRows) {
-		err = tx.QueryRowContext(ctx, `SELECT COALESCE(MAX(version), 0) + 1 FROM study_versions WHERE study_id = ?`, st.ID).Scan(&sv.Version)
-		if err == nil {
-			_, err = tx.ExecContext(ctx, `INSERT INTO study_versions (study_id, version, hash, canonical, source, created_at) VALUES (?, ?, ?, ?, ?, ?)`,
-				st.ID, sv.Version, hash, string(canonical), string(source), now)
+	err = s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		err := tx.QueryRowContext(ctx, `SELECT secret, seed FROM studies WHERE id = ?`, st.ID).Scan(&sv.Secret, &sv.Seed)
+		if errors.Is(err, sql.ErrNoRows) {
+			sv.Secret, sv.Seed = codes.NewSecret(), codes.NewSecret()
+			_, err = tx.ExecContext(ctx, `INSERT INTO studies (id, secret, seed, created_at) VALUES (?, ?, ?, ?)`, st.ID, sv.Secret, sv.Seed, now)
 		}
-	}
+		if err != nil {
+			return err
+		}
+		err = tx.QueryRowContext(ctx, `SELECT version FROM study_versions WHERE study_id = ? AND hash = ?`, st.ID, hash).Scan(&sv.Version)
+		if errors.Is(err, sql.ErrNoRows) {
+			err = tx.QueryRowContext(ctx, `SELECT COALESCE(MAX(version), 0) + 1 FROM study_versions WHERE study_id = ?`, st.ID).Scan(&sv.Version)
+			if err == nil {
+				_, err = tx.ExecContext(ctx, `INSERT INTO study_versions (study_id, version, hash, canonical, source, created_at) VALUES (?, ?, ?, ?, ?, ?)`,
+					st.ID, sv.Version, hash, string(canonical), string(source), now)
+			}
+		}
+		return err
+	})
 	if err != nil {
-		return StudyVersion{}, fmt.Errorf("register study %q: %w", st.ID, err)
-	}
-	if err := tx.Commit(); err != nil {
 		return StudyVersion{}, fmt.Errorf("register study %q: %w", st.ID, err)
 	}
 	return sv, nil

@@ -58,7 +58,7 @@ func Progress(arm *arms.Arm, turns []Turn, finished bool) arms.Progress {
 
 // Turns lists a session's turns in order.
 func (s *Store) Turns(ctx context.Context, sessionID int64) ([]Turn, error) {
-	return turns(ctx, s.r, sessionID)
+	return turns(ctx, s.rs, sessionID)
 }
 
 type queryer interface {
@@ -99,70 +99,76 @@ func turns(ctx context.Context, q queryer, sessionID int64) ([]Turn, error) {
 	return out, nil
 }
 
+// Added is the outcome of AddReply.
+type Added struct {
+	Turn    Turn   // the reply's turn
+	Turns   []Turn // every turn of the session, the reply's included
+	Existed bool   // the client id was already stored: nothing was added
+}
+
 // AddReply commits a respondent's reply. A client id already stored returns
-// the stored turn with existed set and changes nothing, so a resent request
-// makes one turn. check sees the session's turns inside the transaction and
-// may refuse the reply.
-func (s *Store) AddReply(ctx context.Context, sess Session, text, clientID string, check func(done []Turn) error) (t Turn, existed bool, err error) {
-	tx, err := s.w.BeginTx(ctx, nil)
-	if err != nil {
-		return Turn{}, false, fmt.Errorf("add reply: %w", err)
-	}
-	defer rollback(tx)
-	done, err := turns(ctx, tx, sess.ID)
-	if err != nil {
-		return Turn{}, false, fmt.Errorf("add reply: %w", err)
-	}
-	if clientID != "" {
-		for _, d := range done {
-			if d.Role == RoleRespondent && d.ClientID == clientID {
-				return d, true, nil
+// the stored turn with Existed set and changes nothing, so a resent request
+// makes one turn. check sees the session's turns and whether it is finished,
+// inside the transaction, and may refuse the reply.
+func (s *Store) AddReply(ctx context.Context, sess Session, text, clientID string, check func(done []Turn, finished bool) error) (Added, error) {
+	var a Added
+	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		a = Added{}
+		var finished bool
+		if err := tx.QueryRowContext(ctx, `SELECT finished_at IS NOT NULL FROM sessions WHERE id = ?`, sess.ID).Scan(&finished); err != nil {
+			return err
+		}
+		done, err := turns(ctx, tx, sess.ID)
+		if err != nil {
+			return err
+		}
+		a.Turns = done
+		if clientID != "" {
+			for _, d := range done {
+				if d.Role == RoleRespondent && d.ClientID == clientID {
+					a.Turn, a.Existed = d, true
+					return nil
+				}
 			}
 		}
+		if err := check(done, finished); err != nil {
+			return err
+		}
+		now := s.now()
+		a.Turn = Turn{SessionID: sess.ID, Index: len(done), Role: RoleRespondent, Text: text, ClientID: clientID,
+			StartedAt: now, CreatedAt: now, TextSHA256: codes.SHA256Hex([]byte(text)), StudyHash: sess.StudyHash}
+		a.Turns = append(done, a.Turn)
+		return insertTurn(ctx, tx, a.Turn)
+	})
+	if err != nil {
+		return Added{}, fmt.Errorf("add reply: %w", err)
 	}
-	if err := check(done); err != nil {
-		return Turn{}, false, err
-	}
-	now := s.now()
-	t = Turn{SessionID: sess.ID, Index: len(done), Role: RoleRespondent, Text: text, ClientID: clientID,
-		StartedAt: now, CreatedAt: now, TextSHA256: codes.SHA256Hex([]byte(text)), StudyHash: sess.StudyHash}
-	if err := insertTurn(ctx, tx, t); err != nil {
-		return Turn{}, false, fmt.Errorf("add reply: %w", err)
-	}
-	if err := tx.Commit(); err != nil {
-		return Turn{}, false, fmt.Errorf("add reply: %w", err)
-	}
-	return t, false, nil
+	return a, nil
 }
 
 // AddModelTurn commits a model turn at index t.Index. If that index is taken
 // (another request answered first) it returns ErrConflict and changes nothing.
 func (s *Store) AddModelTurn(ctx context.Context, t Turn) (Turn, error) {
 	t.Role = RoleAssistant
-	t.CreatedAt = s.now()
 	t.TextSHA256 = codes.SHA256Hex([]byte(t.Text))
-	tx, err := s.w.BeginTx(ctx, nil)
+	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		var n int
+		if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM turns WHERE session_id = ?`, t.SessionID).Scan(&n); err != nil {
+			return err
+		}
+		if n != t.Index {
+			return fmt.Errorf("turn %d of session %d (it has %d turns): %w", t.Index, t.SessionID, n, ErrConflict)
+		}
+		t.CreatedAt = s.now()
+		return insertTurn(ctx, tx, t)
+	})
 	if err != nil {
-		return Turn{}, fmt.Errorf("add model turn: %w", err)
-	}
-	defer rollback(tx)
-	var n int
-	if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM turns WHERE session_id = ?`, t.SessionID).Scan(&n); err != nil {
-		return Turn{}, fmt.Errorf("add model turn: %w", err)
-	}
-	if n != t.Index {
-		return Turn{}, fmt.Errorf("add model turn %d of session %d (it has %d turns): %w", t.Index, t.SessionID, n, ErrConflict)
-	}
-	if err := insertTurn(ctx, tx, t); err != nil {
-		return Turn{}, fmt.Errorf("add model turn: %w", err)
-	}
-	if err := tx.Commit(); err != nil {
 		return Turn{}, fmt.Errorf("add model turn: %w", err)
 	}
 	return t, nil
 }
 
-func insertTurn(ctx context.Context, tx *sql.Tx, t Turn) error {
+func insertTurn(ctx context.Context, tx *Tx, t Turn) error {
 	_, err := tx.ExecContext(ctx, `INSERT INTO turns (session_id, idx, role, text, client_id, started_at, created_at, latency_ms,
 		model_requested, model_reported, fingerprint, params, prompt_tokens, completion_tokens, retries, finish_reason,
 		system_sha256, request_sha256, text_sha256, study_hash) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
@@ -175,8 +181,11 @@ func insertTurn(ctx context.Context, tx *sql.Tx, t Turn) error {
 
 // RecordFailure logs a model call that failed after every retry.
 func (s *Store) RecordFailure(ctx context.Context, sessionID int64, kind string, status, attempts int) error {
-	_, err := s.w.ExecContext(ctx, `INSERT INTO model_failures (session_id, at, kind, status, attempts) VALUES (?, ?, ?, ?, ?)`,
-		sessionID, fmtTime(s.now()), kind, status, attempts)
+	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		_, err := tx.ExecContext(ctx, `INSERT INTO model_failures (session_id, at, kind, status, attempts) VALUES (?, ?, ?, ?, ?)`,
+			sessionID, fmtTime(s.now()), kind, status, attempts)
+		return err
+	})
 	if err != nil {
 		return fmt.Errorf("record model failure: %w", err)
 	}
@@ -187,7 +196,7 @@ func (s *Store) RecordFailure(ctx context.Context, sessionID int64, kind string,
 // retry; the zero time if never.
 func (s *Store) LastFailure(ctx context.Context, sessionID int64) (time.Time, error) {
 	var at sql.NullString
-	if err := s.r.QueryRowContext(ctx, `SELECT MAX(at) FROM model_failures WHERE session_id = ?`, sessionID).Scan(&at); err != nil {
+	if err := s.rs.QueryRowContext(ctx, `SELECT MAX(at) FROM model_failures WHERE session_id = ?`, sessionID).Scan(&at); err != nil {
 		return time.Time{}, fmt.Errorf("model failures: %w", err)
 	}
 	if !at.Valid {
@@ -202,4 +211,3 @@ func nullString(v string) sql.NullString { return sql.NullString{String: v, Vali
 func nullInt(v int64, role string) sql.NullInt64 {
 	return sql.NullInt64{Int64: v, Valid: role == RoleAssistant}
 }
-

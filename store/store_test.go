@@ -1,0 +1,357 @@
+package store_test
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"os"
+	"path/filepath"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"trialogue/arms"
+	"trialogue/arms/assign"
+	"trialogue/store"
+)
+
+// mustOpen opens a store on a file in the test's temporary folder.
+func mustOpen(tb testing.TB, path string) *store.Store {
+	tb.Helper()
+	if path == "" {
+		path = filepath.Join(tb.TempDir(), "t.db")
+	}
+	st, err := store.Open(context.Background(), path, store.Options{Synchronous: os.Getenv("SYNC")})
+	if err != nil {
+		tb.Fatalf("open store: %v", err)
+	}
+	tb.Cleanup(func() { st.Close() })
+	return st
+}
+
+func mustStudy(tb testing.TB) (*arms.Study, []byte) {
+	tb.Helper()
+	def, src, err := arms.ParseFile("../testdata/demo-study.yaml")
+	if err != nil {
+		tb.Fatalf("parse demo study: %v", err)
+	}
+	return def, src
+}
+
+func assigner(tb testing.TB, def *arms.Study, sv store.StudyVersion) store.Assigner {
+	plan, err := assign.NewPlan(sv.Seed, def.Scheme())
+	if err != nil {
+		tb.Fatalf("plan: %v", err)
+	}
+	return func(stratum string, slot int) (string, string) {
+		arm := plan.Slot(stratum, slot).Arm
+		return arm, def.Arms[arm].Code
+	}
+}
+
+func respondent(rid, lean string) arms.Respondent {
+	return arms.Respondent{RID: rid, Covariates: map[string]string{"age": "30", "lean": lean, "stance": "favour"}}
+}
+
+func TestRegisterStudy(t *testing.T) {
+	ctx := context.Background()
+	st := mustOpen(t, "")
+	def, src := mustStudy(t)
+	t.Run("OK", func(t *testing.T) {
+		a, err := st.RegisterStudy(ctx, def, src)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if a.Version != 1 || len(a.Secret) != 32 || len(a.Seed) != 32 {
+			t.Fatalf("got version %d, secret %d bytes, seed %d bytes; want 1, 32, 32", a.Version, len(a.Secret), len(a.Seed))
+		}
+		b, err := st.RegisterStudy(ctx, def, src)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if b.Version != 1 || string(b.Seed) != string(a.Seed) {
+			t.Fatalf("same file again: got version %d, want 1 with the same seed", b.Version)
+		}
+	})
+	t.Run("OKChangedFileIsNewVersion", func(t *testing.T) {
+		changed := *def
+		changed.Title = "Quillhaven gorge cable car, second wording"
+		v, err := st.RegisterStudy(ctx, &changed, src)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if v.Version != 2 {
+			t.Fatalf("got version %d, want 2", v.Version)
+		}
+		cur, err := st.Study(ctx, def.ID)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if cur.Version != 2 || cur.Hash != v.Hash {
+			t.Fatalf("got current version %d, want 2", cur.Version)
+		}
+	})
+	t.Run("ErrNotFound", func(t *testing.T) {
+		if _, err := st.Study(ctx, "no-such-study"); !errors.Is(err, store.ErrNotFound) {
+			t.Fatalf("got %v, want ErrNotFound", err)
+		}
+	})
+}
+
+func TestEnter(t *testing.T) {
+	ctx := context.Background()
+	st := mustOpen(t, "")
+	def, src := mustStudy(t)
+	sv, err := st.RegisterStudy(ctx, def, src)
+	if err != nil {
+		t.Fatal(err)
+	}
+	as := assigner(t, def, sv)
+	a, created, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), as)
+	if err != nil || !created {
+		t.Fatalf("first entry: created %v, err %v", created, err)
+	}
+	if a.Slot != 0 || len(a.Token) < 22 {
+		t.Fatalf("got slot %d token length %d, want slot 0 and a long token", a.Slot, len(a.Token))
+	}
+	t.Run("OKSameRIDSameSession", func(t *testing.T) {
+		b, created, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), as)
+		if err != nil || created {
+			t.Fatalf("second entry: created %v, err %v", created, err)
+		}
+		if b.ID != a.ID || b.Token != a.Token || b.Arm != a.Arm {
+			t.Fatalf("got session %d/%s, want %d/%s", b.ID, b.Arm, a.ID, a.Arm)
+		}
+	})
+	t.Run("OKNextSlot", func(t *testing.T) {
+		c, _, err := st.Enter(ctx, sv, "lean=left", respondent("r2", "left"), as)
+		if err != nil {
+			t.Fatal(err)
+		}
+		d, _, err := st.Enter(ctx, sv, "lean=right", respondent("r3", "right"), as)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if c.Slot != 1 || d.Slot != 0 {
+			t.Fatalf("got slots %d and %d, want 1 (lean=left) and 0 (lean=right)", c.Slot, d.Slot)
+		}
+	})
+	t.Run("ErrUnknownToken", func(t *testing.T) {
+		if _, err := st.SessionByToken(ctx, "no-such-token-at-all"); !errors.Is(err, store.ErrNotFound) {
+			t.Fatalf("got %v, want ErrNotFound", err)
+		}
+	})
+}
+
+// TestEnterConcurrent: 64 entries at once never share or skip a slot, and
+// each slot's arm is the one the plan gives.
+func TestEnterConcurrent(t *testing.T) {
+	ctx := context.Background()
+	st := mustOpen(t, "")
+	def, src := mustStudy(t)
+	sv, err := st.RegisterStudy(ctx, def, src)
+	if err != nil {
+		t.Fatal(err)
+	}
+	as := assigner(t, def, sv)
+	const n = 64
+	var wg sync.WaitGroup
+	errs := make(chan error, n)
+	for i := range n {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			lean := []string{"left", "centre", "right"}[i%3]
+			_, _, err := st.Enter(ctx, sv, "lean="+lean, respondent(fmt.Sprintf("c%02d", i), lean), as)
+			errs <- err
+		}()
+	}
+	wg.Wait()
+	close(errs)
+	for err := range errs {
+		if err != nil {
+			t.Fatalf("concurrent entry: %v", err)
+		}
+	}
+	sessions, err := st.Sessions(ctx, def.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(sessions) != n {
+		t.Fatalf("got %d sessions, want %d", len(sessions), n)
+	}
+	slots := map[string][]bool{}
+	for _, s := range sessions {
+		if slots[s.Stratum] == nil {
+			slots[s.Stratum] = make([]bool, n)
+		}
+		if slots[s.Stratum][s.Slot] {
+			t.Fatalf("slot %d of %s taken twice", s.Slot, s.Stratum)
+		}
+		slots[s.Stratum][s.Slot] = true
+		if want, _ := as(s.Stratum, s.Slot); s.Arm != want {
+			t.Fatalf("session %d: got arm %s, want %s from the plan", s.ID, s.Arm, want)
+		}
+	}
+	for stratum, taken := range slots {
+		count := 0
+		for _, ok := range taken {
+			if ok {
+				count++
+			}
+		}
+		for i := range count {
+			if !taken[i] {
+				t.Fatalf("%s: slot %d skipped", stratum, i)
+			}
+		}
+	}
+}
+
+func TestTurns(t *testing.T) {
+	ctx := context.Background()
+	path := filepath.Join(t.TempDir(), "t.db")
+	st := mustOpen(t, path)
+	def, src := mustStudy(t)
+	sv, err := st.RegisterStudy(ctx, def, src)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sess, _, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), assigner(t, def, sv))
+	if err != nil {
+		t.Fatal(err)
+	}
+	allow := func([]store.Turn, bool) error { return nil }
+	r1, err := st.AddReply(ctx, sess, "first reply here", "c1", allow)
+	if err != nil || r1.Existed || r1.Turn.Index != 0 || len(r1.Turns) != 1 {
+		t.Fatalf("add reply: got %+v, %v", r1, err)
+	}
+	t.Run("OKSameClientIDOneTurn", func(t *testing.T) {
+		again, err := st.AddReply(ctx, sess, "first reply here", "c1", allow)
+		if err != nil || !again.Existed || again.Turn.Index != 0 || len(again.Turns) != 1 {
+			t.Fatalf("resend: got %+v, %v; want the stored turn 0", again, err)
+		}
+	})
+	t.Run("ErrRefusedByCheck", func(t *testing.T) {
+		refuse := errors.New("refused")
+		if _, err := st.AddReply(ctx, sess, "x", "c9", func([]store.Turn, bool) error { return refuse }); !errors.Is(err, refuse) {
+			t.Fatalf("got %v, want the check's error", err)
+		}
+	})
+	m, err := st.AddModelTurn(ctx, store.Turn{SessionID: sess.ID, Index: 1, Text: "model answer", StartedAt: time.Now(),
+		ModelRequested: "m", ModelReported: "m-1", Retries: 2, SystemSHA256: "s", RequestSHA256: "r", StudyHash: sess.StudyHash})
+	if err != nil {
+		t.Fatal(err)
+	}
+	t.Run("ErrConflictIndexTaken", func(t *testing.T) {
+		_, err := st.AddModelTurn(ctx, store.Turn{SessionID: sess.ID, Index: 1, Text: "second answer", StartedAt: time.Now(), StudyHash: sess.StudyHash})
+		if !errors.Is(err, store.ErrConflict) {
+			t.Fatalf("got %v, want ErrConflict", err)
+		}
+	})
+	t.Run("OKSurvivesReopen", func(t *testing.T) {
+		if err := st.Close(); err != nil {
+			t.Fatal(err)
+		}
+		st2 := mustOpen(t, path)
+		turns, err := st2.Turns(ctx, sess.ID)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if len(turns) != 2 || turns[0].Text != "first reply here" || turns[1].Text != m.Text || turns[1].Retries != 2 || turns[1].ModelReported != "m-1" {
+			t.Fatalf("after reopen got %+v", turns)
+		}
+		// FIPS 180-4 defines SHA-256; the stored text hash is that of the text.
+		if turns[1].TextSHA256 == "" || turns[1].TextSHA256 == turns[0].TextSHA256 {
+			t.Fatalf("text hashes missing or equal: %q %q", turns[0].TextSHA256, turns[1].TextSHA256)
+		}
+		again, err := st2.SessionByToken(ctx, sess.Token)
+		if err != nil || again.Arm != sess.Arm || again.Slot != sess.Slot {
+			t.Fatalf("session after reopen: %+v, %v", again, err)
+		}
+	})
+}
+
+func TestFinish(t *testing.T) {
+	ctx := context.Background()
+	st := mustOpen(t, "")
+	def, src := mustStudy(t)
+	sv, _ := st.RegisterStudy(ctx, def, src)
+	sess, _, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), assigner(t, def, sv))
+	if err != nil {
+		t.Fatal(err)
+	}
+	first, err := st.Finish(ctx, sess.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	second, err := st.Finish(ctx, sess.ID)
+	if err != nil || !second.Equal(first) {
+		t.Fatalf("finish twice: got %v (%v), want the first time %v", second, err, first)
+	}
+	if _, err := st.Finish(ctx, 9999); !errors.Is(err, store.ErrNotFound) {
+		t.Fatalf("finish unknown session: got %v, want ErrNotFound", err)
+	}
+}
+
+func TestOpenErrors(t *testing.T) {
+	ctx := context.Background()
+	if _, err := store.Open(ctx, "", store.Options{}); err == nil {
+		t.Fatal("empty path: got nil error")
+	}
+	if _, err := store.Open(ctx, filepath.Join(t.TempDir(), "t.db"), store.Options{Synchronous: "SOMETIMES"}); err == nil {
+		t.Fatal("bad synchronous mode: got nil error")
+	}
+	if _, err := store.Open(ctx, filepath.Join(t.TempDir(), "missing-dir", "t.db"), store.Options{}); err == nil {
+		t.Fatal("missing folder: got nil error")
+	}
+}
+
+// BenchmarkEnterParallel measures assignments arriving from many
+// respondents at once, which share commits.
+func BenchmarkEnterParallel(b *testing.B) {
+	ctx := context.Background()
+	st := mustOpen(b, "")
+	def, src := mustStudy(b)
+	sv, err := st.RegisterStudy(ctx, def, src)
+	if err != nil {
+		b.Fatal(err)
+	}
+	as := assigner(b, def, sv)
+	leans := []string{"left", "centre", "right"}
+	var n atomic.Int64
+	b.SetParallelism(32)
+	b.ResetTimer()
+	b.RunParallel(func(pb *testing.PB) {
+		for pb.Next() {
+			i := n.Add(1)
+			lean := leans[i%3]
+			if _, _, err := st.Enter(ctx, sv, "lean="+lean, respondent(fmt.Sprintf("p%d", i), lean), as); err != nil {
+				b.Error(err)
+				return
+			}
+		}
+	})
+}
+
+// BenchmarkEnter measures one assignment: a durable transaction that takes
+// the next slot of a stratum and creates the session.
+func BenchmarkEnter(b *testing.B) {
+	ctx := context.Background()
+	st := mustOpen(b, "")
+	def, src := mustStudy(b)
+	sv, err := st.RegisterStudy(ctx, def, src)
+	if err != nil {
+		b.Fatal(err)
+	}
+	as := assigner(b, def, sv)
+	leans := []string{"left", "centre", "right"}
+	b.ResetTimer()
+	for i := 0; b.Loop(); i++ {
+		lean := leans[i%3]
+		if _, _, err := st.Enter(ctx, sv, "lean="+lean, respondent(fmt.Sprintf("b%d", i), lean), as); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
