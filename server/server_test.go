@@ -156,7 +156,9 @@ func (f *fixture) call(method, path string, body any) answer {
 	return a
 }
 
-func reply(text, id string) map[string]string { return map[string]string{"text": text, "client_id": id} }
+func reply(text, id string) map[string]string {
+	return map[string]string{"text": text, "client_id": id}
+}
 
 func TestChatPath(t *testing.T) {
 	f := newFixture(t, studyYAML("harrow-chat", scriptedEndpoint, chatArm), nil)
