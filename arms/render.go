@@ -1,6 +1,8 @@
 package arms
 
 import (
+	"bytes"
+	"encoding/json"
 	"fmt"
 	"strconv"
 	"strings"
@@ -28,6 +30,26 @@ func (s *Study) Hash() (string, error) {
 		return "", fmt.Errorf("hash of study %q: %w", s.ID, err)
 	}
 	return h, nil
+}
+
+// FromCanonical rebuilds a study from its canonical form, as stored for a
+// version: the exact meaning that was hashed, whatever file it came from.
+func FromCanonical(b []byte) (*Study, error) {
+	var s Study
+	dec := json.NewDecoder(bytes.NewReader(b))
+	dec.DisallowUnknownFields()
+	if err := dec.Decode(&s); err != nil {
+		return nil, fmt.Errorf("study from canonical form: %w", err)
+	}
+	if len(s.ArmOrder) != len(s.Arms) {
+		return nil, fmt.Errorf("study from canonical form: arm_order names %d arms, the study has %d", len(s.ArmOrder), len(s.Arms))
+	}
+	for _, name := range s.ArmOrder {
+		if _, ok := s.Arms[name]; !ok {
+			return nil, fmt.Errorf("study from canonical form: arm_order names %q, which is not an arm", name)
+		}
+	}
+	return &s, nil
 }
 
 // Rendered is an arm's prompts for one respondent.

@@ -51,10 +51,10 @@ type Study struct {
 	// the study's language (intro, disclosure, closing, buttons, errors).
 	Texts map[string]string `yaml:"texts" json:"texts"`
 
-	// ArmOrder is the order in which arms are declared in the file; arm
-	// codes follow it. Not part of the file's fields: it is recovered from
-	// the YAML and reflected in each arm's Code.
-	ArmOrder []string `yaml:"-" json:"-"`
+	// ArmOrder is the order in which arms are declared in the file,
+	// recovered from the YAML. It is part of the canonical form: the
+	// allocation sequence and the default arm codes follow it.
+	ArmOrder []string `yaml:"-" json:"arm_order"`
 }
 
 // Covariate is a pre-treatment variable that the survey passes in the entry link.
@@ -85,7 +85,7 @@ type Endpoint struct {
 	TopP        *float64 `yaml:"top_p" json:"top_p,omitempty"`
 	MaxTokens   int      `yaml:"max_tokens" json:"max_tokens,omitempty"`
 	Seed        *int     `yaml:"seed" json:"seed,omitempty"`
-	Timeout     Duration `yaml:"timeout" json:"timeout,omitempty"`  // per attempt; default 60s
+	Timeout     Duration `yaml:"timeout" json:"timeout,omitempty"`   // per attempt; default 60s
 	Attempts    int      `yaml:"attempts" json:"attempts,omitempty"` // default 4
 	// Scripted endpoints: how each reply is streamed.
 	Chunks int      `yaml:"chunks" json:"chunks,omitempty"`

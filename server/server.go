@@ -171,11 +171,11 @@ func (s *Server) studyOf(ctx context.Context, sess store.Session) (*Study, error
 	if ok {
 		return old, nil
 	}
-	src, err := s.store.StudySource(ctx, sess.StudyID, sess.Version)
+	canonical, err := s.store.StudyCanonical(ctx, sess.StudyID, sess.Version)
 	if err != nil {
 		return nil, err
 	}
-	def, err := arms.Parse(key, src)
+	def, err := arms.FromCanonical(canonical)
 	if err != nil {
 		return nil, fmt.Errorf("study %s as stored: %w", key, err)
 	}

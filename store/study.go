@@ -71,6 +71,19 @@ func (s *Store) Study(ctx context.Context, id string) (StudyVersion, error) {
 	return sv, nil
 }
 
+// StudyCanonical returns the canonical form of a version: what was hashed.
+func (s *Store) StudyCanonical(ctx context.Context, id string, version int) ([]byte, error) {
+	var c string
+	err := s.rs.QueryRowContext(ctx, `SELECT canonical FROM study_versions WHERE study_id = ? AND version = ?`, id, version).Scan(&c)
+	if errors.Is(err, sql.ErrNoRows) {
+		return nil, fmt.Errorf("study %q version %d: %w", id, version, ErrNotFound)
+	}
+	if err != nil {
+		return nil, fmt.Errorf("study %q version %d: %w", id, version, err)
+	}
+	return []byte(c), nil
+}
+
 // StudySource returns the study file of a version as it was registered.
 func (s *Store) StudySource(ctx context.Context, id string, version int) ([]byte, error) {
 	var src string

@@ -192,4 +192,3 @@ func runCode(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	fmt.Fprintf(stdout, "%s: %s\n", msg, codes.NormalizeCode(code))
 	return exitOK
 }
-

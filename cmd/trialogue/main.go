@@ -6,6 +6,7 @@ package main
 import (
 	"context"
 	"fmt"
+	"io"
 	"os"
 	"os/signal"
 	"syscall"
@@ -38,7 +39,7 @@ Run "trialogue COMMAND -h" for a command's flags.
 `
 }
 
-func run(ctx context.Context, args []string, stdout, stderr *os.File) int {
+func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	if len(args) == 0 {
 		fmt.Fprint(stderr, usage())
 		return exitUsage

@@ -218,7 +218,7 @@ const cautions = `Before fielding a study with real people:
 
 `
 
-func runServe(ctx context.Context, args []string, stdout, stderr *os.File, demo bool) int {
+func runServe(ctx context.Context, args []string, stdout, stderr io.Writer, demo bool) int {
 	m := &Main{Stdout: stdout}
 	if err := m.ParseFlags(args, demo, stderr); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
