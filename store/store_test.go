@@ -22,7 +22,7 @@ func mustOpen(tb testing.TB, path string) *store.Store {
 	if path == "" {
 		path = filepath.Join(tb.TempDir(), "t.db")
 	}
-	st, err := store.Open(context.Background(), path, store.Options{Synchronous: os.Getenv("SYNC")})
+	st, err := store.Open(context.Background(), path, store.Options{Synchronous: os.Getenv("TRIALOGUE_BENCH_SYNCHRONOUS")})
 	if err != nil {
 		tb.Fatalf("open store: %v", err)
 	}
