@@ -53,14 +53,14 @@ const chatArm = `    kind: chat
     script: ["Hello from the ferry desk.", "The morning ferry leaves at seven.", "The evening ferry leaves at six.", "Thanks for talking."]`
 
 type fixture struct {
-	t     *testing.T
+	t     testing.TB
 	srv   *server.Server
 	st    *store.Store
 	http  *httptest.Server
 	study *server.Study
 }
 
-func newFixture(t *testing.T, yaml string, env map[string]string) *fixture {
+func newFixture(t testing.TB, yaml string, env map[string]string) *fixture {
 	t.Helper()
 	ctx := context.Background()
 	def, err := arms.Parse("test.yaml", []byte(yaml))
@@ -76,7 +76,7 @@ func newFixture(t *testing.T, yaml string, env map[string]string) *fixture {
 	if err != nil {
 		t.Fatal(err)
 	}
-	srv := server.New(st, assets, server.Config{MaxBody: 4096, Getenv: func(k string) string { return env[k] }})
+	srv := server.New(st, assets, server.Config{MaxBody: 4096, Logger: slog.New(slog.DiscardHandler), Getenv: func(k string) string { return env[k] }})
 	study, err := srv.AddStudy(ctx, def, []byte(yaml))
 	if err != nil {
 		t.Fatalf("add study: %v", err)
@@ -508,28 +508,7 @@ func benchServer(b *testing.B) *httptest.Server {
 	b.Helper()
 	arm := strings.Replace(chatArm, "replies: {min: 2, max: 3, min_words: 2, max_chars: 200}", "replies: {min: 1, max: 6}", 1)
 	arm = strings.Replace(arm, "    opening: true\n", "", 1)
-	yaml := studyYAML("harrow-bench", `bot: {kind: scripted}`, arm)
-	ctx := context.Background()
-	def, err := arms.Parse("bench.yaml", []byte(yaml))
-	if err != nil {
-		b.Fatal(err)
-	}
-	st, err := store.Open(ctx, filepath.Join(b.TempDir(), "b.db"), store.Options{})
-	if err != nil {
-		b.Fatal(err)
-	}
-	b.Cleanup(func() { st.Close() })
-	assets, err := web.Load()
-	if err != nil {
-		b.Fatal(err)
-	}
-	srv := server.New(st, assets, server.Config{Logger: slog.New(slog.DiscardHandler)})
-	if _, err := srv.AddStudy(ctx, def, []byte(yaml)); err != nil {
-		b.Fatal(err)
-	}
-	hs := httptest.NewServer(srv.Handler())
-	b.Cleanup(hs.Close)
-	return hs
+	return newFixture(b, studyYAML("harrow-bench", `bot: {kind: scripted}`, arm), nil).http
 }
 
 // benchRespondent sends replies through one session after another.

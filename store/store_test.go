@@ -50,6 +50,18 @@ func assigner(tb testing.TB, def *arms.Study, sv store.StudyVersion) store.Assig
 	}
 }
 
+// mustDemo opens a store with the demo study registered, and its assigner.
+func mustDemo(tb testing.TB) (*store.Store, *arms.Study, store.StudyVersion, store.Assigner) {
+	tb.Helper()
+	st := mustOpen(tb, "")
+	def, src := mustStudy(tb)
+	sv, err := st.RegisterStudy(context.Background(), def, src)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return st, def, sv, assigner(tb, def, sv)
+}
+
 func respondent(rid, lean string) arms.Respondent {
 	return arms.Respondent{RID: rid, Covariates: map[string]string{"age": "30", "lean": lean, "stance": "favour"}}
 }
@@ -101,13 +113,7 @@ func TestRegisterStudy(t *testing.T) {
 
 func TestEnter(t *testing.T) {
 	ctx := context.Background()
-	st := mustOpen(t, "")
-	def, src := mustStudy(t)
-	sv, err := st.RegisterStudy(ctx, def, src)
-	if err != nil {
-		t.Fatal(err)
-	}
-	as := assigner(t, def, sv)
+	st, _, sv, as := mustDemo(t)
 	a, created, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), as)
 	if err != nil || !created {
 		t.Fatalf("first entry: created %v, err %v", created, err)
@@ -148,13 +154,7 @@ func TestEnter(t *testing.T) {
 // each slot's arm is the one the plan gives.
 func TestEnterConcurrent(t *testing.T) {
 	ctx := context.Background()
-	st := mustOpen(t, "")
-	def, src := mustStudy(t)
-	sv, err := st.RegisterStudy(ctx, def, src)
-	if err != nil {
-		t.Fatal(err)
-	}
-	as := assigner(t, def, sv)
+	st, def, sv, as := mustDemo(t)
 	const n = 64
 	var wg sync.WaitGroup
 	errs := make(chan error, n)
@@ -275,10 +275,8 @@ func TestTurns(t *testing.T) {
 
 func TestFinish(t *testing.T) {
 	ctx := context.Background()
-	st := mustOpen(t, "")
-	def, src := mustStudy(t)
-	sv, _ := st.RegisterStudy(ctx, def, src)
-	sess, _, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), assigner(t, def, sv))
+	st, _, sv, as := mustDemo(t)
+	sess, _, err := st.Enter(ctx, sv, "lean=left", respondent("r1", "left"), as)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -312,13 +310,7 @@ func TestOpenErrors(t *testing.T) {
 // respondents at once, which share commits.
 func BenchmarkEnterParallel(b *testing.B) {
 	ctx := context.Background()
-	st := mustOpen(b, "")
-	def, src := mustStudy(b)
-	sv, err := st.RegisterStudy(ctx, def, src)
-	if err != nil {
-		b.Fatal(err)
-	}
-	as := assigner(b, def, sv)
+	st, _, sv, as := mustDemo(b)
 	leans := []string{"left", "centre", "right"}
 	var n atomic.Int64
 	b.SetParallelism(32)
@@ -339,13 +331,7 @@ func BenchmarkEnterParallel(b *testing.B) {
 // the next slot of a stratum and creates the session.
 func BenchmarkEnter(b *testing.B) {
 	ctx := context.Background()
-	st := mustOpen(b, "")
-	def, src := mustStudy(b)
-	sv, err := st.RegisterStudy(ctx, def, src)
-	if err != nil {
-		b.Fatal(err)
-	}
-	as := assigner(b, def, sv)
+	st, _, sv, as := mustDemo(b)
 	leans := []string{"left", "centre", "right"}
 	b.ResetTimer()
 	for i := 0; b.Loop(); i++ {
