@@ -48,6 +48,13 @@
     li.appendChild(p);
     log.appendChild(li);
   }
+  // The reply form sticks to the bottom of the window and would cover the
+  // newest messages: bring the end of the conversation into view.
+  function nearBottom() {
+    var d = document.documentElement;
+    return d.scrollHeight - (window.scrollY + window.innerHeight) < 80;
+  }
+  function toBottom() { window.scrollTo(0, document.documentElement.scrollHeight); }
   function renderLog(s) {
     log.textContent = "";
     s.messages.forEach(function (m) { addMessage(m.role, m.text); });
@@ -135,11 +142,13 @@
     showAlert("");
     return post(path, body, function (ev, d) {
       if (ev === "saved") {
-        if (sentText !== undefined) { addMessage("respondent", sentText); box.value = ""; saveDraft(); put(pendingKey, null); }
+        if (sentText !== undefined) { addMessage("respondent", sentText); box.value = ""; saveDraft(); put(pendingKey, null); toBottom(); }
       } else if (ev === "chunk") {
+        var stick = (draft.hidden && sentText !== undefined) || nearBottom();
         text += d.text;
         draft.hidden = false;
         draft.querySelector("p").textContent = text;
+        if (stick) toBottom();
       } else if (ev === "reset") {
         text = "";
         draft.querySelector("p").textContent = "";
@@ -149,8 +158,10 @@
         put(pendingKey, null);
         busy = false;
         status.textContent = "";
+        var stickDone = sentText !== undefined || nearBottom();
         renderLog(d.state);
         render(d.state);
+        if (stickDone) toBottom();
         if (sentText !== undefined) box.focus();
       } else if (ev === "error") {
         draft.hidden = true;
@@ -174,6 +185,8 @@
       .then(function (s) {
         renderLog(s);
         render(s);
+        // Back in a conversation already under way: show where it stands.
+        if (s.replies_used > 0) toBottom();
         if (s.owed && !s.failed && !busy) return streamModel("/resume", {});
       })
       .catch(function () { showAlert(T.network_failed); });
