@@ -101,15 +101,28 @@ func (a *Arm) CheckFinish(p Progress, elapsedSeconds float64) error {
 	return nil
 }
 
-// CountWords counts runs of letters or digits, the way a reader counts words.
+// CountWords counts runs of letters or digits, the way a reader counts words;
+// an apostrophe inside a word ("don't") does not split it, and apostrophes
+// alone are no word. Scripts written without spaces count the way Unicode's
+// default word boundaries (UAX #29, rule WB999) split them: each Han
+// ideograph or hiragana character is a word of its own.
 func CountWords(s string) int {
 	n, in := 0, false
 	for _, r := range s {
-		w := unicode.IsLetter(r) || unicode.IsDigit(r) || r == '\'' || r == '’'
-		if w && !in {
+		switch {
+		case unicode.In(r, unicode.Han, unicode.Hiragana):
 			n++
+			in = false
+		case unicode.IsLetter(r) || unicode.IsDigit(r) || unicode.IsMark(r):
+			if !in {
+				n++
+			}
+			in = true
+		case r == '\'' || r == '’':
+			// joins the letters around it; starts nothing
+		default:
+			in = false
 		}
-		in = w
 	}
 	return n
 }

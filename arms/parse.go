@@ -6,6 +6,7 @@ import (
 	"os"
 	"sort"
 	"strings"
+	"unicode/utf8"
 
 	"github.com/goccy/go-yaml"
 	"github.com/goccy/go-yaml/ast"
@@ -67,13 +68,20 @@ func Parse(name string, data []byte) (*Study, error) {
 	if strings.TrimSpace(string(data)) == "" {
 		return nil, &Problems{File: name, List: []Problem{{Line: 1, Col: 1, Msg: "the study file is empty"}}}
 	}
+	if line, col, bad := invalidUTF8(data); bad {
+		return nil, &Problems{File: name, List: []Problem{{Line: line, Col: col, Msg: "the file is not valid UTF-8 text; save it as UTF-8"}}}
+	}
 	file, err := parser.ParseBytes(data, 0)
 	if err != nil {
 		return nil, &Problems{File: name, List: []Problem{yamlProblem(err)}}
 	}
+	if body := nodeAt(file); body == nil || body.Type() == ast.NullType {
+		// only comments, a bare document marker or a null: no content at all
+		return nil, &Problems{File: name, List: []Problem{{Line: 1, Col: 1, Msg: "the study file is empty"}}}
+	}
 	var s Study
-	if err := yaml.UnmarshalWithOptions(data, &s, yaml.DisallowUnknownField()); err != nil {
-		return nil, &Problems{File: name, List: []Problem{yamlProblem(err)}}
+	if err := decode(data, &s); err != nil {
+		return nil, &Problems{File: name, List: []Problem{decodeProblem(file, err)}}
 	}
 	v := &validator{file: file, s: &s, probs: &Problems{File: name}}
 	v.s.ArmOrder = v.keyOrder("arms")
@@ -89,6 +97,59 @@ func Parse(name string, data []byte) (*Study, error) {
 		return nil, v.probs
 	}
 	return &s, nil
+}
+
+// invalidUTF8 finds the first byte that is not part of valid UTF-8, which
+// YAML 1.2 (section 5.2) does not allow in a UTF-8 stream. Without this check
+// the bytes would be replaced by U+FFFD in the canonical form, so two
+// different files could share a version hash.
+func invalidUTF8(data []byte) (line, col int, bad bool) {
+	line, col = 1, 1
+	for len(data) > 0 {
+		r, size := utf8.DecodeRune(data)
+		if r == utf8.RuneError && size <= 1 {
+			return line, col, true
+		}
+		if r == '\n' {
+			line, col = line+1, 1
+		} else {
+			col++
+		}
+		data = data[size:]
+	}
+	return 0, 0, false
+}
+
+// errDecoderPanic reports a panic inside the YAML decoder.
+var errDecoderPanic = errors.New("the YAML reader failed on this file")
+
+// decode unmarshals a study file. go-yaml v1.19 panics on some inputs, such as
+// a tag with no value where a list is expected (`blocks: !!seq`, goccy/go-yaml
+// issue 735); a study file is a researcher's input, so that panic becomes an
+// error here.
+func decode(data []byte, s *Study) (err error) {
+	defer func() {
+		if r := recover(); r != nil {
+			err = fmt.Errorf("%w: %v", errDecoderPanic, r)
+		}
+	}()
+	return yaml.UnmarshalWithOptions(data, s, yaml.DisallowUnknownField())
+}
+
+// decodeProblem places a decoding error; after a decoder panic it points at
+// the first tag without a value, the known cause.
+func decodeProblem(file *ast.File, err error) Problem {
+	if !errors.Is(err, errDecoderPanic) {
+		return yamlProblem(err)
+	}
+	for _, n := range ast.FilterFile(ast.TagType, file) {
+		tag, ok := n.(*ast.TagNode)
+		if !ok || (tag.Value != nil && tag.Value.Type() != ast.NullType) || tag.Start == nil || tag.Start.Position == nil {
+			continue
+		}
+		return Problem{Line: tag.Start.Position.Line, Col: tag.Start.Position.Column, Msg: fmt.Sprintf("the tag %s has no value; remove the tag or give it a value", tag.Start.Value)}
+	}
+	return Problem{Line: 1, Col: 1, Msg: "the YAML reader failed on this file; check its tags (words starting with !)"}
 }
 
 // yamlProblem turns a go-yaml error into a Problem with its position.
@@ -128,7 +189,24 @@ func nodeAt(file *ast.File, path ...string) ast.Node {
 			return nil
 		}
 	}
-	return n
+	return unwrap(n)
+}
+
+// unwrap returns the node under anchors, tags and comments, so that
+// `arms: &base {...}` is read like `arms: {...}`.
+func unwrap(n ast.Node) ast.Node {
+	for {
+		switch m := n.(type) {
+		case *ast.AnchorNode:
+			n = m.Value
+		case *ast.TagNode:
+			n = m.Value
+		case *ast.CommentGroupNode, *ast.CommentNode, nil:
+			return nil
+		default:
+			return n
+		}
+	}
 }
 
 func child(n ast.Node, key string) ast.Node {
@@ -191,8 +269,9 @@ func (v *validator) at(path []string, format string, args ...any) {
 	for i := len(path); i >= 0; i-- {
 		if n := nodeAt(v.file, path[:i]...); n != nil && n.GetToken() != nil && n.GetToken().Position != nil {
 			p.Line, p.Col = n.GetToken().Position.Line, n.GetToken().Position.Column
-			if i < len(path) {
-				// the field is missing: point at its parent's key instead
+			if blockMapping(n) || i < len(path) {
+				// a block mapping's token is the colon of its first key, and
+				// a missing field has no position: point at the key instead
 				if l, c, ok := keyPos(v.file, path[:i]...); ok {
 					p.Line, p.Col = l, c
 				}
@@ -204,6 +283,17 @@ func (v *validator) at(path []string, format string, args ...any) {
 		p.Line, p.Col = 1, 1
 	}
 	v.probs.List = append(v.probs.List, p)
+}
+
+// blockMapping reports whether n is a mapping written in block style.
+func blockMapping(n ast.Node) bool {
+	switch m := n.(type) {
+	case *ast.MappingNode:
+		return !m.IsFlowStyle
+	case *ast.MappingValueNode:
+		return true
+	}
+	return false
 }
 
 // atKey reports a problem at the key of path.

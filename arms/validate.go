@@ -33,6 +33,11 @@ const (
 	DefaultTimeout       = 60 * time.Second
 	DefaultAttempts      = 4
 	maxRepliesPerSession = 100
+	// maxExactInt is the largest integer an IEEE-754 double holds exactly
+	// (2^53 - 1). The canonical form (RFC 8785, section 3.2.2.3) writes
+	// numbers as doubles, so a larger seed would be recorded rounded and two
+	// different seeds would share a version hash.
+	maxExactInt = 1<<53 - 1
 )
 
 func (v *validator) validate() {
@@ -98,6 +103,14 @@ func (v *validator) covariates() {
 			if len(c.Values) > 0 {
 				v.at(append(at, "values"), "values apply to choice covariates, not to integer covariate %q", c.Name)
 			}
+			for _, b := range []struct {
+				key string
+				n   *int
+			}{{"min", c.Min}, {"max", c.Max}} {
+				if b.n != nil && (*b.n < -maxExactInt || *b.n > maxExactInt) {
+					v.at(append(at, b.key), "%s of covariate %q must be between -%d and %d", b.key, c.Name, maxExactInt, maxExactInt)
+				}
+			}
 			if c.Min != nil && c.Max != nil && *c.Min > *c.Max {
 				v.at(append(at, "min"), "covariate %q has min %d greater than max %d", c.Name, *c.Min, *c.Max)
 			}
@@ -152,14 +165,18 @@ func (v *validator) endpoints() {
 		if e.Attempts < 1 || e.Attempts > 10 {
 			v.at(append(at, "attempts"), "attempts must be between 1 and 10 (got %d)", e.Attempts)
 		}
-		if e.Temperature != nil && (*e.Temperature < 0 || *e.Temperature > 2) {
+		// written as !(in range) so that .nan is refused too
+		if e.Temperature != nil && !(*e.Temperature >= 0 && *e.Temperature <= 2) {
 			v.at(append(at, "temperature"), "temperature must be between 0 and 2 (got %g)", *e.Temperature)
 		}
-		if e.TopP != nil && (*e.TopP <= 0 || *e.TopP > 1) {
+		if e.TopP != nil && !(*e.TopP > 0 && *e.TopP <= 1) {
 			v.at(append(at, "top_p"), "top_p must be above 0 and at most 1 (got %g)", *e.TopP)
 		}
-		if e.MaxTokens < 0 {
-			v.at(append(at, "max_tokens"), "max_tokens must not be negative")
+		if e.MaxTokens < 0 || e.MaxTokens > maxExactInt {
+			v.at(append(at, "max_tokens"), "max_tokens must be between 0 and %d", maxExactInt)
+		}
+		if e.Seed != nil && (*e.Seed < -maxExactInt || *e.Seed > maxExactInt) {
+			v.at(append(at, "seed"), "seed must be between -%d and %d, so that the version hash records it exactly", maxExactInt, maxExactInt)
 		}
 		switch e.Kind {
 		case EndpointOpenAI:
@@ -268,6 +285,18 @@ func (v *validator) arms() {
 			v.at(append(at, "kind"), "arm %q has kind %q; use fixed, message or chat", name, a.Kind)
 		}
 	}
+	// Every arm must have a place in the order, or it would go unchecked and
+	// without a code; merge keys (<<) can hide arms from the file's key order.
+	var hidden []string
+	for name := range s.Arms {
+		if !slices.Contains(s.ArmOrder, name) {
+			hidden = append(hidden, name)
+		}
+	}
+	slices.Sort(hidden)
+	for _, name := range hidden {
+		v.at(p("arms"), "arm %q must be written out under arms, not merged in with <<", name)
+	}
 }
 
 // modelArm checks what message and chat arms share: an endpoint and prompts.
@@ -351,6 +380,11 @@ func fieldRefs(n parse.Node) [][]string {
 			}
 		case *parse.FieldNode:
 			out = append(out, n.Ident)
+		case *parse.VariableNode:
+			// $.name is the template's data, like .name at the top level
+			if len(n.Ident) > 1 && n.Ident[0] == "$" {
+				out = append(out, n.Ident[1:])
+			}
 		case *parse.ChainNode:
 			walk(n.Node)
 		case *parse.IfNode:
@@ -387,8 +421,19 @@ func (v *validator) allocation() {
 		v.at(p("allocation", "blocks"), "allocation needs block sizes, e.g. blocks: [6, 12]")
 		return
 	}
-	if err := s.Scheme().Validate(); err != nil {
-		v.at(p("allocation"), "%s", err.Error())
+	sc := s.Scheme()
+	sum := 0
+	for _, r := range sc.Arms {
+		sum += max(r.Weight, 0)
+	}
+	for i, b := range s.Allocation.Blocks {
+		if sum > 0 && (b < 1 || b%sum != 0) {
+			v.at(p("allocation", "blocks", strconv.Itoa(i)), "block size %d is not a positive multiple of %d, the sum of the ratios under allocation.arms", b, sum)
+			return
+		}
+	}
+	if err := sc.Validate(); err != nil {
+		v.at(p("allocation", "arms"), "%s", err.Error())
 	}
 }
 
@@ -418,14 +463,19 @@ func (v *validator) returnURL() {
 		return
 	}
 	uses := map[string]bool{}
+	unknown := false
 	for _, f := range fieldRefs(t.Tree.Root) {
 		if !slices.Contains(returnFields, f[0]) {
 			v.at(p("return"), "return may use {{.rid}}, {{.code}}, {{.arm_code}} and {{.study}}; .%s is not one of them", f[0])
+			unknown = true
 		}
 		uses[f[0]] = true
 	}
 	if !uses["code"] {
 		v.at(p("return"), "return must pass the completion code back to the survey with {{.code}}")
+	}
+	if unknown {
+		return // rendering the example would only repeat the problem
 	}
 	u, err := s.ReturnURL("R-example", "ABCDE-FGHJK", "A1")
 	if err != nil {
