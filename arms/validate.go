@@ -59,6 +59,9 @@ func (v *validator) validate() {
 	v.arms()
 	v.allocation()
 	v.returnURL()
+	if len(v.probs.List) == 0 {
+		v.trialRender()
+	}
 	for i, fa := range s.FrameAncestors {
 		if fa != "*" && fa != "'self'" && !strings.HasPrefix(fa, "https://") && !strings.HasPrefix(fa, "http://") {
 			v.at(p("frame_ancestors", strconv.Itoa(i)), "frame_ancestors entries are origins such as https://survey.example.org, or * (got %q)", fa)
@@ -403,6 +406,53 @@ func fieldRefs(n parse.Node) [][]string {
 	}
 	walk(n)
 	return out
+}
+
+// trialRender renders every model arm's prompts for a range of made-up
+// respondents (each value of each choice covariate, and one without any
+// optional covariate), so that a template that fails at run time, such as a
+// comparison with a covariate a respondent may leave out, fails the check
+// instead of a respondent's turn.
+func (v *validator) trialRender() {
+	s := v.s
+	base := s.Example()
+	type trial struct {
+		what string
+		r    Respondent
+	}
+	trials := []trial{{"the example covariates", base}}
+	without := Respondent{RID: base.RID, Covariates: map[string]string{}}
+	for _, c := range s.Covariates {
+		if c.Required {
+			without.Covariates[c.Name] = base.Covariates[c.Name]
+		}
+		if c.Type != TypeChoice {
+			continue
+		}
+		for _, val := range c.Values[1:] {
+			r := Respondent{RID: base.RID, Covariates: map[string]string{}}
+			for k, x := range base.Covariates {
+				r.Covariates[k] = x
+			}
+			r.Covariates[c.Name] = val
+			trials = append(trials, trial{c.Name + "=" + val, r})
+		}
+	}
+	if len(without.Covariates) < len(base.Covariates) {
+		trials = append(trials, trial{"no optional covariates", without})
+	}
+	for _, name := range s.ArmOrder {
+		if !s.Arms[name].NeedsModel() {
+			continue
+		}
+		for _, tr := range trials {
+			if _, err := s.Render(name, tr.r); err != nil {
+				v.at(p("arms", name), "the prompts of arm %q fail for a respondent with %s (guard optional covariates with {{if .name}}): %s",
+					name, tr.what, strings.TrimPrefix(err.Error(), "render "))
+				break
+			}
+		}
+	}
 }
 
 func (v *validator) allocation() {

@@ -49,3 +49,38 @@ func TestFromCanonical(t *testing.T) {
 		}
 	})
 }
+
+// TestTrialRender: a template that fails for some respondents fails the
+// check, with the arm's position; the guarded form passes.
+func TestTrialRender(t *testing.T) {
+	study := func(system string) string {
+		return `id: fernby-library
+title: Fernby library hours
+covariates:
+  - {name: lean, type: choice, values: [left, right], required: true}
+  - {name: age, type: integer, min: 18, max: 99}
+allocation: {blocks: [1], arms: {talk: 1}}
+endpoints:
+  bot: {kind: scripted}
+arms:
+  talk:
+    kind: chat
+    endpoint: bot
+    replies: {min: 1, max: 2}
+    system: "` + system + `"
+return: "https://survey.example.org/r?code={{.code}}"
+`
+	}
+	t.Run("ErrUnguardedOptionalCovariate", func(t *testing.T) {
+		_, err := arms.Parse("f.yaml", []byte(study(`You talk with a {{if gt .age 60}}senior{{end}} resident.`)))
+		if err == nil || !strings.Contains(err.Error(), "f.yaml:10:3:") || !strings.Contains(err.Error(), "no optional covariates") {
+			t.Fatalf("got %v, want an error at f.yaml:10:3 naming the missing optional covariate", err)
+		}
+	})
+	t.Run("OKGuarded", func(t *testing.T) {
+		// Go's text/template documentation: "and" stops at the first empty argument.
+		if _, err := arms.Parse("f.yaml", []byte(study(`You talk with a {{if and .age (gt .age 60)}}senior{{end}} resident.`))); err != nil {
+			t.Fatalf("got %v, want no error", err)
+		}
+	})
+}
