@@ -1,0 +1,479 @@
+package main
+
+import (
+	"bufio"
+	"bytes"
+	"context"
+	"encoding/json"
+	"fmt"
+	"io"
+	"net/http"
+	"os"
+	"os/exec"
+	"path/filepath"
+	"regexp"
+	"slices"
+	"strings"
+	"sync"
+	"sync/atomic"
+	"syscall"
+	"testing"
+	"time"
+
+	"trialogue/arms"
+	"trialogue/arms/assign"
+	"trialogue/store"
+)
+
+var (
+	buildOnce sync.Once
+	buildPath string
+	buildErr  error
+)
+
+// trialogueBinary builds the real command once per test run.
+func trialogueBinary(t *testing.T) string {
+	t.Helper()
+	buildOnce.Do(func() {
+		dir, err := os.MkdirTemp("", "trialogue-bin-")
+		if err != nil {
+			buildErr = err
+			return
+		}
+		buildPath = filepath.Join(dir, "trialogue")
+		out, err := exec.Command("go", "build", "-o", buildPath, ".").CombinedOutput()
+		if err != nil {
+			buildErr = fmt.Errorf("go build: %w\n%s", err, out)
+		}
+	})
+	if buildErr != nil {
+		t.Fatal(buildErr)
+	}
+	return buildPath
+}
+
+// proc is a running trialogue process.
+type proc struct {
+	cmd    *exec.Cmd
+	base   string // http://127.0.0.1:PORT
+	stderr *lockedBuffer
+	exited chan struct{}
+	err    error // Wait's result, once exited is closed
+}
+
+type lockedBuffer struct {
+	mu sync.Mutex
+	b  bytes.Buffer
+}
+
+func (l *lockedBuffer) Write(p []byte) (int, error) {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.Write(p)
+}
+
+func (l *lockedBuffer) String() string {
+	l.mu.Lock()
+	defer l.mu.Unlock()
+	return l.b.String()
+}
+
+var servingLine = regexp.MustCompile(`on (http://127\.0\.0\.1:\d+)`)
+
+// startProc starts the binary with args and waits until it says where it
+// listens. The process is killed when the test ends, if still running.
+func startProc(t *testing.T, bin string, args ...string) *proc {
+	t.Helper()
+	p := &proc{cmd: exec.Command(bin, args...), stderr: &lockedBuffer{}, exited: make(chan struct{})}
+	p.cmd.Stderr = p.stderr
+	out, err := p.cmd.StdoutPipe()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := p.cmd.Start(); err != nil {
+		t.Fatal(err)
+	}
+	addr := make(chan string, 1)
+	go func() {
+		sc := bufio.NewScanner(out)
+		sent := false
+		for sc.Scan() {
+			if m := servingLine.FindStringSubmatch(sc.Text()); m != nil && !sent {
+				addr <- m[1]
+				sent = true
+			}
+		}
+		if !sent {
+			close(addr)
+		}
+	}()
+	go func() { p.err = p.cmd.Wait(); close(p.exited) }()
+	t.Cleanup(func() {
+		select {
+		case <-p.exited:
+		default:
+			p.cmd.Process.Kill()
+			<-p.exited
+		}
+	})
+	base, ok := <-addr
+	if !ok {
+		<-p.exited
+		t.Fatalf("trialogue %v did not start: %v\n%s", args, p.err, p.stderr.String())
+	}
+	p.base = base
+	return p
+}
+
+// crashStudy has two chat arms whose scripted answers tell them apart, and
+// a message arm; strata by lean. The scripted delay keeps replies in flight.
+const crashStudy = `id: crash-ferry
+title: Harrow Bay night ferry
+covariates:
+  - {name: lean, type: choice, values: [left, centre, right], required: true}
+strata: [lean]
+allocation: {blocks: [3, 6], arms: {pro: 1, con: 1, note: 1}}
+endpoints:
+  bot: {kind: scripted, chunks: 4, delay: 150ms}
+arms:
+  pro:
+    kind: chat
+    endpoint: bot
+    replies: {min: 4, max: 4}
+    system: Argue for the night ferry.
+    script: ["Pro one: the night ferry helps shift workers.", "Pro two: it cuts the drive round the bay.", "Pro three: it runs on the old pier.", "Pro four: thank you for talking."]
+  con:
+    kind: chat
+    endpoint: bot
+    replies: {min: 4, max: 4}
+    system: Argue against the night ferry.
+    script: ["Con one: the night ferry costs too much.", "Con two: few would ride it after ten.", "Con three: the pier needs repairs first.", "Con four: thank you for talking."]
+  note:
+    kind: message
+    endpoint: bot
+    system: Write a note.
+    prompt: Write one note about the night ferry.
+    script: ["Note: the night ferry would leave the old pier at eleven."]
+return: "https://survey.example.org/back?rid={{.rid}}&code={{.code}}&arm={{.arm_code}}"
+`
+
+// crashRespondent is what one synthetic respondent saw before the kill.
+type crashRespondent struct {
+	rid, lean, token string
+	kind             string
+	firstAnswer      string // the first model text shown: names the arm
+	acked            []int  // reply numbers answered with 200 before the kill
+	inFlight         int    // reply number sent when the server died; -1 if none
+}
+
+func crashPost(ctx context.Context, hc *http.Client, url, body string, v any) (int, error) {
+	req, err := http.NewRequestWithContext(ctx, "POST", url, strings.NewReader(body))
+	if err != nil {
+		return 0, err
+	}
+	req.Header.Set("Accept", "application/json")
+	res, err := hc.Do(req)
+	if err != nil {
+		return 0, err
+	}
+	defer res.Body.Close()
+	b, err := io.ReadAll(res.Body)
+	if err != nil {
+		return 0, err
+	}
+	if v != nil && res.StatusCode == 200 {
+		if err := json.Unmarshal(b, v); err != nil {
+			return 0, fmt.Errorf("decode %s: %w", b, err)
+		}
+	}
+	return res.StatusCode, nil
+}
+
+type crashAnswer struct {
+	Reply string `json:"reply"`
+	State state  `json:"state"`
+}
+
+// TestCrashMidChat builds the real binary, drives 200 respondents through
+// chats, kills the server with SIGKILL while replies are in flight, starts
+// it again on the same database, and checks that every reply acknowledged
+// before the kill is stored exactly once with its answer, every session
+// resumes with the same token and arm, and the allocation sequence has no
+// slot repeated or skipped.
+func TestCrashMidChat(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds the binary and runs 200 respondents")
+	}
+	bin := trialogueBinary(t)
+	dir := t.TempDir()
+	studyPath := filepath.Join(dir, "crash.yaml")
+	if err := os.WriteFile(studyPath, []byte(crashStudy), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	db := filepath.Join(dir, "crash.db")
+	args := []string{"serve", "--study", studyPath, "--db", db, "--addr", "127.0.0.1:0"}
+	p := startProc(t, bin, args...)
+
+	const n = 200
+	hc := &http.Client{Transport: &http.Transport{MaxIdleConnsPerHost: n}, CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
+	defer hc.CloseIdleConnections()
+	resp := make([]*crashRespondent, n)
+	var acks atomic.Int64
+	killed := make(chan struct{})
+	var wg sync.WaitGroup
+	for i := range n {
+		r := &crashRespondent{rid: fmt.Sprintf("crash-%03d", i), lean: []string{"left", "centre", "right"}[i%3], inFlight: -1}
+		resp[i] = r
+		wg.Go(func() { driveUntilKilled(p.base, hc, r, &acks) })
+	}
+	// Kill once enough replies are acknowledged that every respondent is
+	// mid-chat on average, while others are still in flight.
+	go func() {
+		for acks.Load() < 300 {
+			select {
+			case <-p.exited:
+				return
+			default:
+				time.Sleep(5 * time.Millisecond)
+			}
+		}
+		p.cmd.Process.Signal(syscall.SIGKILL)
+		close(killed)
+	}()
+	wg.Wait()
+	select {
+	case <-killed:
+	default:
+		t.Fatalf("the respondents finished before the kill (%d acks): raise the scripted delay\n%s", acks.Load(), p.stderr.String())
+	}
+	<-p.exited
+	hc.CloseIdleConnections()
+	entered, inFlight := 0, 0
+	for _, r := range resp {
+		if r.token != "" {
+			entered++
+		}
+		if r.inFlight >= 0 {
+			inFlight++
+		}
+	}
+	t.Logf("killed after %d acknowledged replies; %d respondents entered, %d replies in flight", acks.Load(), entered, inFlight)
+	if inFlight == 0 {
+		t.Fatalf("no reply was in flight at the kill: the test did not test a crash mid-reply")
+	}
+
+	p2 := startProc(t, bin, args...)
+	errs := make([]error, len(resp))
+	for i, r := range resp {
+		wg.Go(func() { errs[i] = resumeAfterCrash(p2.base, hc, r) })
+	}
+	wg.Wait()
+	for i, err := range errs {
+		if err != nil {
+			t.Errorf("%s after the restart: %v", resp[i].rid, err)
+		}
+	}
+	if t.Failed() {
+		t.FailNow()
+	}
+	hc.CloseIdleConnections()
+	p2.cmd.Process.Signal(syscall.SIGTERM)
+	<-p2.exited
+	if p2.err != nil {
+		t.Fatalf("second server on SIGTERM: got %v, want exit 0\n%s", p2.err, p2.stderr.String())
+	}
+	checkCrashDatabase(t, db, studyPath, resp)
+}
+
+// driveUntilKilled enters, takes the opening or message if any, and replies
+// until the arm's maximum or until the server goes away.
+func driveUntilKilled(base string, hc *http.Client, r *crashRespondent, acks *atomic.Int64) {
+	ctx := context.Background()
+	res, err := hc.Get(base + "/s/crash-ferry?rid=" + r.rid + "&lean=" + r.lean)
+	if err != nil {
+		return
+	}
+	res.Body.Close()
+	if res.StatusCode != http.StatusSeeOther {
+		return
+	}
+	token := strings.TrimPrefix(res.Header.Get("Location"), "/c/")
+	r.token = token
+	var a crashAnswer
+	if st, err := crashPost(ctx, hc, base+"/c/"+token+"/resume", "", &a); err != nil || st != 200 {
+		return
+	}
+	r.kind = a.State.Kind
+	if a.Reply != "" {
+		r.firstAnswer = a.Reply
+		acks.Add(1)
+	}
+	if r.kind != "chat" {
+		return
+	}
+	for i := range 4 {
+		r.inFlight = i
+		st, err := crashPost(ctx, hc, base+"/c/"+token+"/reply", fmt.Sprintf(`{"text":"reply %d about the ferry","client_id":"c%d"}`, i, i), &a)
+		if err != nil {
+			return // the server died with this reply in flight
+		}
+		r.inFlight = -1
+		if st != 200 {
+			return
+		}
+		if r.firstAnswer == "" {
+			r.firstAnswer = a.Reply
+		}
+		r.acked = append(r.acked, i)
+		acks.Add(1)
+	}
+}
+
+// resumeAfterCrash re-enters a respondent after the restart, checks the
+// session is the same, resends the reply that was in flight, and finishes.
+func resumeAfterCrash(base string, hc *http.Client, r *crashRespondent) error {
+	ctx := context.Background()
+	res, err := hc.Get(base + "/s/crash-ferry?rid=" + r.rid + "&lean=" + r.lean)
+	if err != nil {
+		return err
+	}
+	res.Body.Close()
+	token := strings.TrimPrefix(res.Header.Get("Location"), "/c/")
+	if r.token != "" && token != r.token {
+		return fmt.Errorf("re-entry after the crash: got another session (token changed)")
+	}
+	var a crashAnswer
+	if st, err := crashPost(ctx, hc, base+"/c/"+token+"/resume", "", &a); err != nil || st != 200 {
+		return fmt.Errorf("resume: got %d %v, want 200", st, err)
+	}
+	if r.kind != "" && a.State.Kind != r.kind {
+		return fmt.Errorf("arm kind: got %q, want %q as before the crash", a.State.Kind, r.kind)
+	}
+	msgs := a.State.Messages
+	if r.firstAnswer != "" {
+		var first string
+		for _, m := range msgs {
+			if m.Role == "assistant" {
+				first = m.Text
+				break
+			}
+		}
+		if first != r.firstAnswer {
+			return fmt.Errorf("first model text: got %q, want %q (the same arm as before the crash)", first, r.firstAnswer)
+		}
+	}
+	if a.State.RepliesUsed < len(r.acked) {
+		return fmt.Errorf("replies stored: got %d, want at least the %d acknowledged", a.State.RepliesUsed, len(r.acked))
+	}
+	if a.State.Kind == "chat" {
+		// Resend what was in flight under the same client id, then go on.
+		from := a.State.RepliesUsed
+		if r.inFlight >= 0 {
+			from = r.inFlight
+		}
+		for i := from; i < 4; i++ {
+			st, err := crashPost(ctx, hc, base+"/c/"+token+"/reply", fmt.Sprintf(`{"text":"reply %d about the ferry","client_id":"c%d"}`, i, i), &a)
+			if err != nil || st != 200 {
+				return fmt.Errorf("reply %d after restart: got %d %v, want 200", i, st, err)
+			}
+		}
+		if a.State.RepliesUsed != 4 {
+			return fmt.Errorf("replies after resending: got %d, want 4", a.State.RepliesUsed)
+		}
+	}
+	var fin finishAnswerJSON
+	if st, err := crashPost(ctx, hc, base+"/c/"+token+"/finish", "", &fin); err != nil || st != 200 {
+		return fmt.Errorf("finish: got %d %v, want 200", st, err)
+	}
+	return nil
+}
+
+type finishAnswerJSON struct {
+	Code    string `json:"code"`
+	ArmCode string `json:"arm_code"`
+}
+
+// checkCrashDatabase reads the database after both runs.
+func checkCrashDatabase(t *testing.T, db, studyPath string, resp []*crashRespondent) {
+	ctx := context.Background()
+	st, err := store.Open(ctx, db, store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer st.Close()
+	def, _, err := arms.ParseFile(studyPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	sv, err := st.Study(ctx, def.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	plan, err := assign.NewPlan(sv.Seed, def.Scheme())
+	if err != nil {
+		t.Fatal(err)
+	}
+	sessions, err := st.Sessions(ctx, def.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(sessions) != len(resp) {
+		t.Fatalf("sessions: got %d, want %d (one per respondent)", len(sessions), len(resp))
+	}
+	slots := map[string][]int{}
+	byRID := map[string]store.Session{}
+	for _, s := range sessions {
+		slots[s.Stratum] = append(slots[s.Stratum], s.Slot)
+		byRID[s.RID] = s
+		if want := plan.Slot(s.Stratum, s.Slot).Arm; s.Arm != want {
+			t.Errorf("session %s: got arm %s, want %s from the allocation sequence", s.RID, s.Arm, want)
+		}
+	}
+	for stratum, got := range slots {
+		slices.Sort(got)
+		for i, s := range got {
+			if s != i {
+				t.Fatalf("stratum %s: slots %v, want 0..%d with none repeated or skipped", stratum, got, len(got)-1)
+			}
+		}
+	}
+	for _, r := range resp {
+		s := byRID[r.rid]
+		if r.token != "" && s.Token != r.token {
+			t.Errorf("%s: token changed", r.rid)
+		}
+		if r.firstAnswer != "" {
+			script := def.Arms[s.Arm].Script
+			if !slices.Contains(script, r.firstAnswer) {
+				t.Errorf("%s: stored arm %s never says %q, which the respondent saw before the crash", r.rid, s.Arm, r.firstAnswer)
+			}
+		}
+		turns, err := st.Turns(ctx, s.ID)
+		if err != nil {
+			t.Fatal(err)
+		}
+		seen := map[string]int{}
+		for i, tn := range turns {
+			if tn.Index != i {
+				t.Fatalf("%s: turn %d has index %d", r.rid, i, tn.Index)
+			}
+			if tn.Role == store.RoleRespondent {
+				seen[tn.ClientID]++
+				if i+1 >= len(turns) || turns[i+1].Role != store.RoleAssistant {
+					t.Errorf("%s: reply %s has no stored answer after it", r.rid, tn.ClientID)
+				}
+			}
+		}
+		for _, a := range r.acked {
+			if got := seen[fmt.Sprintf("c%d", a)]; got != 1 {
+				t.Errorf("%s: acknowledged reply c%d stored %d times, want 1", r.rid, a, got)
+			}
+		}
+		if def.Arms[s.Arm].Kind == arms.KindChat && len(seen) != 4 {
+			t.Errorf("%s: got %d distinct replies, want 4", r.rid, len(seen))
+		}
+		if !s.Finished() {
+			t.Errorf("%s: not finished", r.rid)
+		}
+	}
+}
