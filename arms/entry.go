@@ -21,6 +21,9 @@ var ridPattern = regexp.MustCompile(`^[A-Za-z0-9][A-Za-z0-9._:@~-]*$`)
 type Respondent struct {
 	RID        string
 	Covariates map[string]string // by covariate name, as passed (integers in decimal)
+	// Language is the page language chosen with lang= in the entry link,
+	// one of the study's PageLanguages; "" means the study's language.
+	Language string
 }
 
 // FieldError is a respondent-entry error naming the field at fault.
@@ -48,6 +51,11 @@ func (s *Study) ParseEntry(q url.Values) (Respondent, error) {
 		return r, &FieldError{"rid", "the respondent id may contain only letters, digits and . _ : @ ~ -"}
 	}
 	r.RID = rids[0]
+	lang, err := s.entryLanguage(q["lang"])
+	if err != nil {
+		return r, err
+	}
+	r.Language = lang
 	for _, c := range s.Covariates {
 		vals := q[c.Name]
 		if len(vals) > 1 {
@@ -169,4 +177,34 @@ func (s *Study) Example() Respondent {
 		}
 	}
 	return r
+}
+
+// entryLanguage resolves the lang parameter of an entry link to one of the
+// study's page languages. Survey platforms write language codes in their
+// own case and often with a region (EN, es-MX), so case is ignored and a
+// region the study does not offer falls back to its base language.
+func (s *Study) entryLanguage(vals []string) (string, error) {
+	if len(vals) > 1 {
+		return "", &FieldError{"lang", "given more than once"}
+	}
+	if len(vals) == 0 || vals[0] == "" {
+		return "", nil
+	}
+	if len(vals[0]) > 35 {
+		return "", &FieldError{"lang", "the language code is longer than 35 characters"}
+	}
+	want := strings.ReplaceAll(vals[0], "_", "-")
+	offered := s.PageLanguages()
+	for _, l := range offered {
+		if strings.EqualFold(l, want) {
+			return l, nil
+		}
+	}
+	base, _, _ := strings.Cut(want, "-")
+	for _, l := range offered {
+		if strings.EqualFold(l, base) {
+			return l, nil
+		}
+	}
+	return "", &FieldError{"lang", fmt.Sprintf("%q is not a language of this study (%s)", vals[0], strings.Join(offered, ", "))}
 }

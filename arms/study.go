@@ -50,6 +50,13 @@ type Study struct {
 	// Texts are respondent-facing strings that override the catalogue of
 	// the study's language (intro, disclosure, closing, buttons, errors).
 	Texts map[string]string `yaml:"texts" json:"texts"`
+	// Languages are further languages that an entry link may choose with
+	// lang= (the study's Language is always allowed). They change the
+	// page's own strings, not the arms' texts or prompts.
+	Languages []string `yaml:"languages" json:"languages,omitempty"`
+	// Translations override catalogue strings per language, by language
+	// code: for a study offering several languages, what Texts is for Language.
+	Translations map[string]map[string]string `yaml:"translations" json:"translations,omitempty"`
 
 	// ArmOrder is the order in which arms are declared in the file,
 	// recovered from the YAML. It is part of the canonical form: the
@@ -192,4 +199,33 @@ func (a *Arm) RepliesOf() Replies {
 // NeedsModel reports whether the arm has the model write any turn.
 func (a *Arm) NeedsModel() bool {
 	return a.Kind == KindMessage || a.Kind == KindChat
+}
+
+// TextOverrides returns the study's overrides of the page's strings for a
+// respondent whose page is in lang: Texts for the study's language, then
+// that language's Translations.
+func (s *Study) TextOverrides(lang string) map[string]string {
+	out := map[string]string{}
+	if lang == "" || lang == s.Language {
+		for k, v := range s.Texts {
+			out[k] = v
+		}
+		lang = s.Language
+	}
+	for k, v := range s.Translations[lang] {
+		out[k] = v
+	}
+	return out
+}
+
+// PageLanguages lists the languages a respondent's page may be in: the
+// study's language first, then the further Languages.
+func (s *Study) PageLanguages() []string {
+	out := []string{s.Language}
+	for _, l := range s.Languages {
+		if l != s.Language {
+			out = append(out, l)
+		}
+	}
+	return out
 }

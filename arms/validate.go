@@ -53,6 +53,7 @@ func (v *validator) validate() {
 	} else if !languagePattern.MatchString(s.Language) {
 		v.at(p("language"), "language must be a language code such as en, es or pt-BR (got %q)", s.Language)
 	}
+	v.languages()
 	v.covariates()
 	v.strata()
 	v.endpoints()
@@ -556,4 +557,24 @@ func (s *Study) ReturnURL(rid, code, armCode string) (string, error) {
 		return "", fmt.Errorf("return template: %w", err)
 	}
 	return b.String(), nil
+}
+
+// languages checks the further languages and the per-language translations.
+func (v *validator) languages() {
+	s := v.s
+	seen := map[string]bool{s.Language: true}
+	for i, l := range s.Languages {
+		switch {
+		case !languagePattern.MatchString(l):
+			v.at(p("languages", strconv.Itoa(i)), "languages entries must be language codes such as en, es or pt-BR (got %q)", l)
+		case seen[l]:
+			v.at(p("languages", strconv.Itoa(i)), "language %q is listed twice (the study's language counts)", l)
+		}
+		seen[l] = true
+	}
+	for l := range s.Translations {
+		if !seen[l] {
+			v.at(p("translations", l), "translations for %q, which is neither the study's language nor one of its languages", l)
+		}
+	}
 }

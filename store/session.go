@@ -27,6 +27,8 @@ type Session struct {
 	Covariates map[string]string
 	CreatedAt  time.Time
 	FinishedAt time.Time // zero while unfinished
+	// Language is the page language the entry link chose; "" means the study's.
+	Language string
 }
 
 // Finished reports whether the respondent has continued back to the survey.
@@ -34,7 +36,7 @@ func (s Session) Finished() bool { return !s.FinishedAt.IsZero() }
 
 // Respondent returns the session's respondent as the study sees it.
 func (s Session) Respondent() arms.Respondent {
-	return arms.Respondent{RID: s.RID, Covariates: s.Covariates}
+	return arms.Respondent{RID: s.RID, Covariates: s.Covariates, Language: s.Language}
 }
 
 // Assigner gives the arm of a stratum's slot: a pure function of the
@@ -67,10 +69,10 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		arm, code := assign(stratum, slot)
 		now := s.now()
 		sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
-			Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now}
-		res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at)
-			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
-			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now))
+			Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now, Language: r.Language}
+		res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language)
+			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''))`,
+			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language)
 		if err != nil {
 			return err
 		}
@@ -139,7 +141,7 @@ func (s *Store) Finish(ctx context.Context, id int64) (time.Time, error) {
 }
 
 const sessionSelect = `SELECT s.id, s.study_id, s.rid, s.token, s.version, s.study_hash, s.stratum, s.slot, s.arm, s.arm_code,
-	s.covariates, s.created_at, s.finished_at FROM sessions s`
+	s.covariates, s.created_at, s.finished_at, COALESCE(s.language, '') FROM sessions s`
 
 type querier interface {
 	QueryRowContext(ctx context.Context, query string, args ...any) *sql.Row
@@ -163,7 +165,7 @@ func scanSession(row scanner) (Session, error) {
 	var covs, created string
 	var finished sql.NullString
 	if err := row.Scan(&sess.ID, &sess.StudyID, &sess.RID, &sess.Token, &sess.Version, &sess.StudyHash, &sess.Stratum,
-		&sess.Slot, &sess.Arm, &sess.ArmCode, &covs, &created, &finished); err != nil {
+		&sess.Slot, &sess.Arm, &sess.ArmCode, &covs, &created, &finished, &sess.Language); err != nil {
 		return Session{}, err
 	}
 	if err := json.Unmarshal([]byte(covs), &sess.Covariates); err != nil {
