@@ -8,6 +8,7 @@ import (
 	"github.com/go-chi/chi/v5"
 
 	"trialogue/arms"
+	"trialogue/store"
 )
 
 // handleEntry takes a respondent from the survey into a session.
@@ -35,6 +36,10 @@ func (s *Server) handleEntry(w http.ResponseWriter, r *http.Request) {
 		arm := st.Plan.Slot(stratum, slot).Arm
 		return arm, st.Def.Arms[arm].Code
 	})
+	if errors.Is(err, store.ErrStudyClosed) {
+		s.fail(w, r, &Error{Status: http.StatusGone, Key: "study_closed", Msg: "This study is closed and takes no new participants. Thank you for your interest."})
+		return
+	}
 	if err != nil {
 		s.fail(w, r, err)
 		return

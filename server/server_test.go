@@ -566,3 +566,27 @@ func BenchmarkDurableTurnParallel(b *testing.B) {
 	})
 	b.ReportMetric(2*float64(b.N)/b.Elapsed().Seconds(), "turns/s")
 }
+
+func TestClosedStudy(t *testing.T) {
+	f := newFixture(t, studyYAML("harrow-closed", scriptedEndpoint, chatArm), nil)
+	tok := f.enter("R-before", "left")
+	if err := f.st.CloseStudy(context.Background(), "harrow-closed"); err != nil {
+		t.Fatal(err)
+	}
+	t.Run("ErrNewRespondent", func(t *testing.T) {
+		res, err := noRedirect.Get(f.http.URL + "/s/harrow-closed?rid=R-after&lean=left")
+		if err != nil {
+			t.Fatal(err)
+		}
+		body, _ := io.ReadAll(res.Body)
+		res.Body.Close()
+		if res.StatusCode != http.StatusGone || !strings.Contains(string(body), "closed") {
+			t.Fatalf("got %d %.200s, want 410 saying the study is closed", res.StatusCode, body)
+		}
+	})
+	t.Run("OKReturningRespondent", func(t *testing.T) {
+		if again := f.enter("R-before", "left"); again != tok {
+			t.Fatal("a returning respondent got another session")
+		}
+	})
+}

@@ -61,6 +61,13 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		if !errors.Is(err, ErrNotFound) {
 			return err
 		}
+		var phase string
+		if err := tx.QueryRowContext(ctx, `SELECT phase FROM studies WHERE id = ?`, sv.ID).Scan(&phase); err != nil {
+			return err
+		}
+		if phase == PhaseClosed {
+			return ErrStudyClosed
+		}
 		var slot int
 		err = tx.QueryRowContext(ctx, `SELECT next_slot FROM strata WHERE study_id = ? AND stratum = ?`, sv.ID, stratum).Scan(&slot)
 		if err != nil && !errors.Is(err, sql.ErrNoRows) {
@@ -81,8 +88,14 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		}
 		_, err = tx.ExecContext(ctx, `INSERT INTO strata (study_id, stratum, next_slot) VALUES (?, ?, ?)
 			ON CONFLICT (study_id, stratum) DO UPDATE SET next_slot = excluded.next_slot`, sv.ID, stratum, slot+1)
-		created = err == nil
-		return err
+		if err != nil {
+			return err
+		}
+		if err := appendChain(ctx, tx, sv.ID, EventAssigned, now, assignedEvent(sess, RIDKey(sv.Secret, r.RID), covs)); err != nil {
+			return err
+		}
+		created = true
+		return nil
 	})
 	if err != nil {
 		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
@@ -125,19 +138,37 @@ func (s *Store) Sessions(ctx context.Context, study string) ([]Session, error) {
 func (s *Store) Finish(ctx context.Context, id int64) (time.Time, error) {
 	var at string
 	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
-		if _, err := tx.ExecContext(ctx, `UPDATE sessions SET finished_at = ? WHERE id = ? AND finished_at IS NULL`, fmtTime(s.now()), id); err != nil {
+		now := s.now()
+		res, err := tx.ExecContext(ctx, `UPDATE sessions SET finished_at = ? WHERE id = ? AND finished_at IS NULL`, fmtTime(now), id)
+		if err != nil {
 			return err
 		}
-		err := tx.QueryRowContext(ctx, `SELECT finished_at FROM sessions WHERE id = ?`, id).Scan(&at)
+		var study string
+		err = tx.QueryRowContext(ctx, `SELECT finished_at, study_id FROM sessions WHERE id = ?`, id).Scan(&at, &study)
 		if errors.Is(err, sql.ErrNoRows) {
 			return ErrNotFound
 		}
-		return err
+		if err != nil {
+			return err
+		}
+		if n, err := res.RowsAffected(); err != nil || n == 0 {
+			return err // finished before: nothing new to log
+		}
+		return appendChain(ctx, tx, study, EventFinished, now, map[string]int64{"session": id})
 	})
 	if err != nil {
 		return time.Time{}, fmt.Errorf("finish session: %w", err)
 	}
 	return parseTime(at)
+}
+
+// assignedEvent is what the chain logs of an assignment.
+func assignedEvent(sess Session, ridKey string, covariates []byte) map[string]any {
+	return map[string]any{
+		"session": sess.ID, "rid_key": ridKey, "stratum": sess.Stratum, "slot": sess.Slot, "arm": sess.Arm,
+		"arm_code": sess.ArmCode, "version": sess.Version, "study_hash": sess.StudyHash,
+		"covariates_sha256": codes.SHA256Hex(covariates),
+	}
 }
 
 const sessionSelect = `SELECT s.id, s.study_id, s.rid, s.token, s.version, s.study_hash, s.stratum, s.slot, s.arm, s.arm_code,

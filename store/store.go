@@ -37,9 +37,14 @@ type Store struct {
 	rs *stmts  // the readers' prepared statements
 	wr *writer // groups concurrent writes into shared commits
 
+	path string
+
 	// Now is the clock, a seam for tests.
 	Now func() time.Time
 }
+
+// Path is the database file.
+func (s *Store) Path() string { return s.path }
 
 // Options tune how the database is opened.
 type Options struct {
@@ -80,7 +85,7 @@ func Open(ctx context.Context, path string, opt Options) (*Store, error) {
 		return nil, fmt.Errorf("open database %q: %w", path, err)
 	}
 	r.SetMaxOpenConns(max(4, runtime.NumCPU()*2))
-	s := &Store{w: w, r: r, Now: time.Now}
+	s := &Store{w: w, r: r, path: path, Now: time.Now}
 	if err := w.PingContext(ctx); err != nil {
 		s.Close()
 		return nil, fmt.Errorf("open database %q: %w", path, err)

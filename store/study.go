@@ -29,7 +29,8 @@ func (s *Store) RegisterStudy(ctx context.Context, st *arms.Study, source []byte
 		return StudyVersion{}, err
 	}
 	hash := codes.SHA256Hex(canonical)
-	now := fmtTime(s.now())
+	at := s.now()
+	now := fmtTime(at)
 	sv := StudyVersion{ID: st.ID, Hash: hash}
 	err = s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
 		err := tx.QueryRowContext(ctx, `SELECT secret, seed FROM studies WHERE id = ?`, st.ID).Scan(&sv.Secret, &sv.Seed)
@@ -46,6 +47,9 @@ func (s *Store) RegisterStudy(ctx context.Context, st *arms.Study, source []byte
 			if err == nil {
 				_, err = tx.ExecContext(ctx, `INSERT INTO study_versions (study_id, version, hash, canonical, source, created_at) VALUES (?, ?, ?, ?, ?, ?)`,
 					st.ID, sv.Version, hash, string(canonical), string(source), now)
+			}
+			if err == nil {
+				err = appendChain(ctx, tx, st.ID, EventVersion, at, map[string]any{"version": sv.Version, "hash": hash})
 			}
 		}
 		return err

@@ -138,7 +138,10 @@ func (s *Store) AddReply(ctx context.Context, sess Session, text, clientID strin
 		a.Turn = Turn{SessionID: sess.ID, Index: len(done), Role: RoleRespondent, Text: text, ClientID: clientID,
 			StartedAt: now, CreatedAt: now, TextSHA256: codes.SHA256Hex([]byte(text)), StudyHash: sess.StudyHash}
 		a.Turns = append(done, a.Turn)
-		return insertTurn(ctx, tx, a.Turn)
+		if err := insertTurn(ctx, tx, a.Turn); err != nil {
+			return err
+		}
+		return appendChain(ctx, tx, sess.StudyID, EventTurn, now, turnEvent(a.Turn))
 	})
 	if err != nil {
 		return Added{}, fmt.Errorf("add reply: %w", err)
@@ -160,12 +163,30 @@ func (s *Store) AddModelTurn(ctx context.Context, t Turn) (Turn, error) {
 			return fmt.Errorf("turn %d of session %d (it has %d turns): %w", t.Index, t.SessionID, n, ErrConflict)
 		}
 		t.CreatedAt = s.now()
-		return insertTurn(ctx, tx, t)
+		if err := insertTurn(ctx, tx, t); err != nil {
+			return err
+		}
+		var study string
+		if err := tx.QueryRowContext(ctx, `SELECT study_id FROM sessions WHERE id = ?`, t.SessionID).Scan(&study); err != nil {
+			return err
+		}
+		return appendChain(ctx, tx, study, EventTurn, t.CreatedAt, turnEvent(t))
 	})
 	if err != nil {
 		return Turn{}, fmt.Errorf("add model turn: %w", err)
 	}
 	return t, nil
+}
+
+// turnEvent is what the chain logs of a turn: its place, its hashes and the
+// model that wrote it; the text itself stays in the turns table, tied to the
+// chain by its hash.
+func turnEvent(t Turn) map[string]any {
+	return map[string]any{
+		"session": t.SessionID, "index": t.Index, "role": t.Role, "text_sha256": t.TextSHA256,
+		"system_sha256": t.SystemSHA256, "request_sha256": t.RequestSHA256, "model_requested": t.ModelRequested,
+		"model_reported": t.ModelReported, "fingerprint": t.Fingerprint, "retries": t.Retries, "study_hash": t.StudyHash,
+	}
 }
 
 func insertTurn(ctx context.Context, tx *Tx, t Turn) error {
