@@ -34,6 +34,9 @@ Commands:
   trialogue serve --study FILE [--study FILE ...] [--db trialogue.db] [--addr 127.0.0.1:8080]
   trialogue check FILE
   trialogue code verify --db PATH --study ID RID CODE
+  trialogue verify (--db PATH --study ID | BUNDLE.tar.gz)
+  trialogue bundle --db PATH --study ID --out FILE.tar.gz [--release]
+  trialogue close --db PATH --study ID
 
 Run "trialogue COMMAND -h" for a command's flags.
 `
@@ -53,6 +56,12 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runCheck(args[1:], stdout, stderr)
 	case "code":
 		return runCode(ctx, args[1:], stdout, stderr)
+	case "verify":
+		return runVerify(ctx, args[1:], stdout, stderr)
+	case "bundle":
+		return runBundle(ctx, args[1:], stdout, stderr)
+	case "close":
+		return runClose(ctx, args[1:], stdout, stderr)
 	case "help", "-h", "--help":
 		fmt.Fprint(stdout, usage())
 		return exitOK
