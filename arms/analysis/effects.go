@@ -377,6 +377,9 @@ func (d *design) sample(t *Table) (*sample, error) {
 		present[si] = true
 	}
 	s.nStrata = len(present)
+	if len(d.study.Strata) == 0 {
+		s.nStrata = 1 // an unstratified design has no stratum fixed effects
+	}
 	var small []string
 	for g := range s.groups {
 		if s.count[g] < 2 {

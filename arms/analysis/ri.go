@@ -19,7 +19,8 @@ import (
 // sequence under seed: the sequence assign.Plan gives, computed without its
 // cache so that thousands of re-draws cost no allocation. It follows steps 1
 // to 5 of the assign package documentation with assign's own StratumKey and
-// Draw; TestRedrawMatchesPlan holds it to assign.Plan.
+// Draw; TestRedrawMatchesPlan holds it to assign.Plan. list is scratch
+// space for one block; Redraw returns it, grown, for the next call.
 func Redraw(seed []byte, sc assign.Scheme, stratum string, dst []int32, list []int32) []int32 {
 	src := rand.NewChaCha8(assign.StratumKey(seed, stratum))
 	sum := 0
