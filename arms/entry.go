@@ -51,7 +51,7 @@ func (s *Study) ParseEntry(q url.Values) (Respondent, error) {
 		return r, &FieldError{"rid", "the respondent id may contain only letters, digits and . _ : @ ~ -"}
 	}
 	r.RID = rids[0]
-	lang, err := s.entryLanguage(q["lang"])
+	lang, err := s.EntryLanguage(q["lang"])
 	if err != nil {
 		return r, err
 	}
@@ -179,11 +179,11 @@ func (s *Study) Example() Respondent {
 	return r
 }
 
-// entryLanguage resolves the lang parameter of an entry link to one of the
+// EntryLanguage resolves the lang parameter of an entry link to one of the
 // study's page languages. Survey platforms write language codes in their
 // own case and often with a region (EN, es-MX), so case is ignored and a
 // region the study does not offer falls back to its base language.
-func (s *Study) entryLanguage(vals []string) (string, error) {
+func (s *Study) EntryLanguage(vals []string) (string, error) {
 	if len(vals) > 1 {
 		return "", &FieldError{"lang", "given more than once"}
 	}

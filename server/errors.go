@@ -73,7 +73,7 @@ func (s *Server) fail(w http.ResponseWriter, r *http.Request, err error) {
 	if e.Status >= 500 {
 		s.log.Error("request failed", slog.String("ref", ref), slog.String("route", routeOf(r)), slog.Any("err", e))
 	}
-	texts := s.assets.Texts("en", nil)
+	lang, texts := s.respondentTexts(r)
 	msg := texts[e.Key]
 	if msg == "" {
 		msg = e.Msg
@@ -82,7 +82,7 @@ func (s *Server) fail(w http.ResponseWriter, r *http.Request, err error) {
 		writeJSON(w, e.Status, map[string]string{"error": e.Msg, "rule": e.Rule, "field": e.Field, "reference": ref})
 		return
 	}
-	page := errorPage{pageBase: pageBase{Lang: "en", Dir: "ltr", PageTitle: texts["error_title"], T: texts},
+	page := errorPage{pageBase: pageBase{Lang: lang, Dir: direction(lang), PageTitle: texts["error_title"], T: texts},
 		Message: msg, Reference: ref}
 	if e.Field != "" {
 		page.Field = e.Field + ": " + e.Msg

@@ -32,6 +32,14 @@ func csp(frameAncestors string) string {
 		"base-uri 'none'; form-action 'self'; frame-ancestors " + frameAncestors
 }
 
+// compress answers pages, scripts, styles and JSON compressed (gzip or
+// deflate, as the client accepts) to keep the respondent page small on a
+// phone's connection. Event streams are not among its types, so each
+// Server-Sent Event still leaves at once.
+func compress(next http.Handler) http.Handler {
+	return middleware.Compress(5)(next)
+}
+
 // logRequests logs each request by its route pattern, so tokens and
 // respondent ids in the address never reach the log.
 func (s *Server) logRequests(next http.Handler) http.Handler {

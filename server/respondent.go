@@ -5,8 +5,11 @@ import (
 	"html/template"
 	"math"
 	"net/http"
+	"strconv"
 	"strings"
 	"time"
+
+	"github.com/go-chi/chi/v5"
 
 	"trialogue/arms"
 	"trialogue/store"
@@ -26,6 +29,8 @@ type State struct {
 	Owed        bool           `json:"owed"`                   // a model turn is due
 	Failed      bool           `json:"failed"`                 // the last attempt at it failed: offer Retry
 	WaitSeconds int            `json:"wait_seconds,omitempty"` // reading time left before Continue
+	MinWords    int            `json:"min_words,omitempty"`    // chat: the fewest words a reply may have
+	MaxChars    int            `json:"max_chars,omitempty"`    // chat: the most characters a reply may have
 }
 
 // StateMessage is one turn as the respondent sees it.
@@ -46,6 +51,10 @@ func (s *Server) state(req *request, turns []store.Turn, failedAt time.Time) Sta
 		lim := arm.RepliesOf()
 		st.RepliesMin, st.RepliesMax = lim.Min, lim.Max
 		st.CanReply = !p.Finished && !p.Owed && p.Replies < lim.Max
+		st.MinWords, st.MaxChars = lim.MinWords, lim.MaxChars
+		if st.MaxChars == 0 {
+			st.MaxChars = arms.DefaultMaxChars
+		}
 	}
 	elapsed := s.Now().Sub(req.sess.CreatedAt).Seconds()
 	st.CanFinish = !p.Finished && arm.CheckFinish(p, elapsed) == nil
@@ -89,6 +98,8 @@ type respondentPage struct {
 	FixedParagraphs []string
 	Messages        []StateMessage
 	MaxChars        int
+	Counter         string // the reply counter as the script would write it, so nothing moves when it starts
+	CounterWarn     string // the warning before the last reply
 	TextsJSON       template.JS
 }
 
@@ -104,15 +115,21 @@ func (s *Server) handlePage(w http.ResponseWriter, r *http.Request) {
 		s.fail(w, r, err)
 		return
 	}
-	texts := s.assets.Texts(def.Language, def.Texts)
+	lang := sessionLanguage(req)
+	texts := s.assets.Texts(lang, def.TextOverrides(lang))
+	title := def.Title
+	if texts["title"] != "" {
+		title = texts["title"]
+	}
+	counter, warn := counterText(st, texts)
 	tj, err := json.Marshal(texts)
 	if err != nil {
 		s.fail(w, r, err)
 		return
 	}
 	page := respondentPage{
-		pageBase:       pageBase{Lang: def.Language, Dir: direction(def.Language), PageTitle: def.Title, T: texts},
-		Title:          def.Title,
+		pageBase:       pageBase{Lang: lang, Dir: direction(lang), PageTitle: title, T: texts},
+		Title:          title,
 		Token:          req.sess.Token,
 		Kind:           arm.Kind,
 		Chat:           arm.Kind == arms.KindChat,
@@ -120,7 +137,9 @@ func (s *Server) handlePage(w http.ResponseWriter, r *http.Request) {
 		ParentOrigin:   def.ParentOrigin,
 		FixedText:      arm.Text,
 		Messages:       st.Messages,
-		MaxChars:       arm.RepliesOf().MaxChars,
+		MaxChars:       st.MaxChars,
+		Counter:        counter,
+		CounterWarn:    warn,
 		// JSON inside a script element of type application/json: escape "<" so
 		// that no text can close the element.
 		TextsJSON: template.JS(strings.ReplaceAll(string(tj), "<", `\u003c`)),
@@ -141,6 +160,56 @@ func (s *Server) handlePage(w http.ResponseWriter, r *http.Request) {
 	w.Header().Set("Content-Type", "text/html; charset=utf-8")
 	w.Header().Set("Cache-Control", "no-store")
 	w.Write([]byte(b.String()))
+}
+
+// sessionLanguage is the language of a session's page: the one its entry
+// link chose, or else the study's.
+func sessionLanguage(req *request) string {
+	if req.sess.Language != "" {
+		return req.sess.Language
+	}
+	return req.study.Def.Language
+}
+
+// respondentTexts is the catalogue for a respondent's request, in their
+// language when it is known: the session's, or on an entry link the one
+// lang= asks for, or the study's.
+func (s *Server) respondentTexts(r *http.Request) (lang string, texts map[string]string) {
+	if req, ok := r.Context().Value(sessionKey).(*request); ok && req != nil {
+		lang = sessionLanguage(req)
+		return lang, s.assets.Texts(lang, req.study.Def.TextOverrides(lang))
+	}
+	if rc := chi.RouteContext(r.Context()); rc != nil {
+		if st, ok := s.study(rc.URLParam("study")); ok {
+			lang = st.Def.Language
+			if l, err := st.Def.EntryLanguage(r.URL.Query()["lang"]); err == nil && l != "" {
+				lang = l
+			}
+			return lang, s.assets.Texts(lang, st.Def.TextOverrides(lang))
+		}
+	}
+	return "en", s.assets.Texts("en", nil)
+}
+
+// counterText is the reply counter of a chat and its warning before the
+// last reply, as chat.js writes them.
+func counterText(st State, texts map[string]string) (counter, warn string) {
+	if st.Kind != arms.KindChat {
+		return "", ""
+	}
+	if st.RepliesUsed >= st.RepliesMax {
+		return texts["max_reached"], ""
+	}
+	key := "counter"
+	if st.RepliesUsed >= st.RepliesMin {
+		key = "counter_done"
+	}
+	counter = strings.NewReplacer("{used}", strconv.Itoa(st.RepliesUsed), "{min}", strconv.Itoa(st.RepliesMin),
+		"{max}", strconv.Itoa(st.RepliesMax)).Replace(texts[key])
+	if st.RepliesMax-st.RepliesUsed == 1 && !st.Finished {
+		warn = texts["last_reply"]
+	}
+	return counter, warn
 }
 
 // direction is the writing direction of a language.

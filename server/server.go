@@ -194,7 +194,7 @@ func (s *Server) studyOf(ctx context.Context, sess store.Session) (*Study, error
 // Handler returns the routes, with the middleware composed in one place.
 func (s *Server) Handler() http.Handler {
 	r := chi.NewRouter()
-	r.Use(s.recoverer, s.logRequests, securityHeaders)
+	r.Use(s.recoverer, s.logRequests, securityHeaders, compress)
 	r.Get("/healthz", func(w http.ResponseWriter, _ *http.Request) { w.Write([]byte("ok\n")) })
 	r.Get("/readyz", s.handleReady)
 	r.Get("/static/{name}", func(w http.ResponseWriter, r *http.Request) {

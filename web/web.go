@@ -17,6 +17,7 @@ import (
 	"mime"
 	"net/http"
 	"path"
+	"sort"
 	"strings"
 )
 
@@ -136,6 +137,42 @@ func (a *Assets) Texts(lang string, overrides map[string]string) map[string]stri
 	for k, v := range overrides {
 		out[k] = v
 	}
+	return out
+}
+
+// Languages lists the languages that have a catalogue, sorted.
+func (a *Assets) Languages() []string {
+	out := make([]string, 0, len(a.texts))
+	for l := range a.texts {
+		out = append(out, l)
+	}
+	sort.Strings(out)
+	return out
+}
+
+// Missing lists, sorted, the keys of the English catalogue that neither the
+// catalogue of lang (or of its base language, for a code with a region) nor
+// the study's overrides translate: the strings a respondent would see in
+// English on a page in lang. English itself misses nothing.
+func (a *Assets) Missing(lang string, overrides map[string]string) []string {
+	base, _, _ := strings.Cut(lang, "-")
+	if base == "en" {
+		return nil
+	}
+	var out []string
+	for k := range a.texts["en"] {
+		if _, ok := overrides[k]; ok {
+			continue
+		}
+		if _, ok := a.texts[lang][k]; ok {
+			continue
+		}
+		if _, ok := a.texts[base][k]; ok {
+			continue
+		}
+		out = append(out, k)
+	}
+	sort.Strings(out)
 	return out
 }
 

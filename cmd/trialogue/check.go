@@ -54,9 +54,33 @@ func runCheck(args []string, stdout, stderr io.Writer) int {
 			unknown = append(unknown, k)
 		}
 	}
+	for lang, texts := range def.Translations {
+		for k := range texts {
+			if !known[k] {
+				unknown = append(unknown, "translations."+lang+"."+k)
+			}
+		}
+	}
 	if len(unknown) > 0 {
 		sort.Strings(unknown)
 		fmt.Fprintf(stderr, "%s: texts: unknown key(s) %s; known keys are those of web/messages/en.json\n", path, strings.Join(unknown, ", "))
+		return exitUsage
+	}
+	// A page language without a full translation would show respondents
+	// English strings in the middle of their own language.
+	missing := false
+	for _, lang := range def.PageLanguages() {
+		if miss := assets.Missing(lang, def.TextOverrides(lang)); len(miss) > 0 {
+			where := "translations." + lang
+			if lang == def.Language {
+				where = "texts"
+			}
+			fmt.Fprintf(stderr, "%s: language %s: no translation for %d key(s): %s; translate them under %s (Trialogue ships catalogues for %s)\n",
+				path, lang, len(miss), strings.Join(miss, ", "), where, strings.Join(assets.Languages(), ", "))
+			missing = true
+		}
+	}
+	if missing {
 		return exitUsage
 	}
 	if err := describe(stdout, def); err != nil {

@@ -1,40 +1,38 @@
 // Trialogue respondent page. Plain script, no framework: it reads the
 // session's state, sends replies, shows the model's reply as it streams in,
 // and returns to the survey. Everything rides on the token in the address;
-// no cookies are used.
+// no cookies are used. Every text comes from the page's catalogue (#texts).
 (function () {
   "use strict";
   var app = document.getElementById("app");
   if (!app) return;
   var base = "/c/" + encodeURIComponent(app.dataset.token);
   var T = JSON.parse(document.getElementById("texts").textContent);
-  var log = document.getElementById("log");
-  var draft = document.getElementById("draft");
-  var form = document.getElementById("reply-form");
-  var box = document.getElementById("reply");
-  var send = document.getElementById("send");
-  var counter = document.getElementById("counter");
-  var status = document.getElementById("status");
-  var alertBox = document.getElementById("alert");
-  var retry = document.getElementById("retry");
-  var cont = document.getElementById("continue");
-  var state = null;
-  var busy = false;
+  var $ = function (id) { return document.getElementById(id); };
+  var log = document.querySelector("#log ol");
+  var draft = $("draft"), draftText = draft.querySelector("p");
+  var form = $("reply-form"), box = $("reply"), send = $("send"), counter = $("counter");
+  var status = $("status"), alertBox = $("alert"), retry = $("retry"), cont = $("continue");
+  var state = null, busy = false, leaving = false, waitTimer = 0;
   var store = window.sessionStorage;
   var draftKey = "trialogue:draft:" + app.dataset.token;
   var pendingKey = "trialogue:pending:" + app.dataset.token;
+  // With reduced motion the reply appears whole, without a typing effect.
+  var calm = window.matchMedia && window.matchMedia("(prefers-reduced-motion: reduce)").matches;
+  // Streaming needs a readable response body; without one, plain JSON.
+  var canStream = !!(window.TextDecoder && window.ReadableStream && "body" in Response.prototype);
 
   function fmt(s, v) {
-    return String(s).replace(/\{(\w+)\}/g, function (_, k) { return v[k] !== undefined ? v[k] : ""; });
+    return String(s || "").replace(/\{(\w+)\}/g, function (_, k) { return v[k] !== undefined ? v[k] : ""; });
   }
   function newID() {
     var a = new Uint8Array(16);
     window.crypto.getRandomValues(a);
     return Array.prototype.map.call(a, function (b) { return ("0" + b.toString(16)).slice(-2); }).join("");
   }
-  function saveDraft() { try { store.setItem(draftKey, box.value); } catch (e) { /* storage may be off */ } }
   function get(k) { try { return store.getItem(k); } catch (e) { return null; } }
-  function put(k, v) { try { if (v === null) store.removeItem(k); else store.setItem(k, v); } catch (e) { /* ignore */ } }
+  function put(k, v) { try { if (v === null) store.removeItem(k); else store.setItem(k, v); } catch (e) { /* storage may be off */ } }
+  function saveDraft() { put(draftKey, box.value || null); }
 
   function addMessage(role, text) {
     var li = document.createElement("li");
@@ -43,91 +41,120 @@
     who.className = "who";
     who.textContent = role === "respondent" ? T.you : T.assistant;
     var p = document.createElement("p");
+    p.dir = "auto";
     p.textContent = text;
     li.appendChild(who);
     li.appendChild(p);
     log.appendChild(li);
   }
-  // The reply form sticks to the bottom of the window and would cover the
-  // newest messages: bring the end of the conversation into view.
+  // syncLog brings the log up to the state's messages by appending only
+  // what is new, so that a screen reader announces each message once.
+  function syncLog(msgs) {
+    var items = log.children, i, same = items.length <= msgs.length;
+    for (i = 0; same && i < items.length; i++) {
+      same = items[i].classList.contains(msgs[i].role) && items[i].querySelector("p").textContent === msgs[i].text;
+    }
+    if (!same) { log.textContent = ""; i = 0; }
+    for (; i < msgs.length; i++) addMessage(msgs[i].role, msgs[i].text);
+  }
+  // The dock sticks to the bottom of the window and would cover the newest
+  // messages: bring the end of the conversation into view.
   function nearBottom() {
     var d = document.documentElement;
     return d.scrollHeight - (window.scrollY + window.innerHeight) < 80;
   }
   function toBottom() { window.scrollTo(0, document.documentElement.scrollHeight); }
-  function renderLog(s) {
-    log.textContent = "";
-    s.messages.forEach(function (m) { addMessage(m.role, m.text); });
-  }
   function showAlert(text) {
     alertBox.textContent = text || "";
     alertBox.hidden = !text;
   }
+  function say(text, isBusy) {
+    status.textContent = text || "";
+    status.classList.toggle("busy", !!isBusy);
+  }
+  function ruleText(rule, fallback) {
+    var s = state || {};
+    var v = { min: s.replies_min, max: s.replies_max, min_words: s.min_words, max_chars: s.max_chars };
+    if (rule === "too_early") return T.read_first;
+    if (rule === "finished") return T.done_already;
+    if (rule && T[rule]) return fmt(T[rule], v);
+    return fallback || T.server_error;
+  }
+
   function render(s) {
     state = s;
-    var chat = s.kind === "chat";
-    if (chat) {
+    if (s.kind === "chat") {
+      var v = { used: s.replies_used, min: s.replies_min, max: s.replies_max };
       var left = s.replies_max - s.replies_used;
-      var line = s.replies_used >= s.replies_min ?
-        fmt(T.counter_done, { used: s.replies_used, min: s.replies_min, max: s.replies_max }) :
-        fmt(T.counter, { used: s.replies_used, min: s.replies_min, max: s.replies_max });
-      if (left === 1) line += " " + T.last_reply;
-      if (left <= 0) line = T.max_reached;
-      counter.textContent = line;
+      counter.textContent = left <= 0 ? T.max_reached : fmt(s.replies_used >= s.replies_min ? T.counter_done : T.counter, v);
+      if (left === 1 && !s.finished) {
+        var warn = document.createElement("strong");
+        warn.textContent = " " + T.last_reply;
+        counter.appendChild(warn);
+      }
       form.hidden = s.finished;
-      box.disabled = busy || !s.can_reply;
-      send.disabled = busy || !s.can_reply;
+      var open = s.can_reply && !leaving;
+      // While the model writes, the box stays focusable (read-only), so
+      // focus never jumps away from it; once no reply is left, it is disabled.
+      box.readOnly = busy;
+      box.disabled = !busy && !open;
+      send.disabled = busy || !open;
     }
     retry.hidden = busy || !s.failed;
-    cont.hidden = busy || s.finished || !s.can_finish;
-    if (!s.can_finish && s.wait_seconds > 0 && !s.finished) {
-      status.textContent = T.read_first;
-      window.setTimeout(refresh, s.wait_seconds * 1000 + 250);
-    } else if (!busy) {
-      status.textContent = "";
+    cont.hidden = busy || !(s.can_finish || s.finished);
+    if (busy) return;
+    window.clearTimeout(waitTimer);
+    if (s.finished) say(leaving ? T.finished : T.done_already);
+    else if (!s.can_finish && s.wait_seconds > 0) {
+      say(T.read_first);
+      waitTimer = window.setTimeout(refresh, s.wait_seconds * 1000 + 250);
+    } else if (s.can_finish && !s.can_reply && s.kind === "chat") say(T.closing);
+    else if (s.can_finish && s.kind !== "chat") say(T.closing);
+    else say("");
+    // Nothing left to type: keyboard users go on to what they can do next.
+    if (document.activeElement === document.body || document.activeElement === box && box.disabled) {
+      if (!cont.hidden) cont.focus(); else if (!retry.hidden) retry.focus();
     }
   }
   function setBusy(b) {
     busy = b;
-    status.textContent = b ? T.waiting : "";
+    say(b ? T.waiting : "", b);
     if (state) render(state);
   }
 
-  // post sends a JSON body and, when the server streams, handles each event.
-  function post(path, body, onEvent) {
+  // post sends a JSON body; a streamed answer calls onEvent per event, a
+  // plain JSON answer calls it once with "done" or "error".
+  function post(path, body, onEvent, stream) {
     return fetch(base + path, {
       method: "POST",
-      headers: { "Content-Type": "application/json", "Accept": "text/event-stream, application/json" },
+      headers: { "Content-Type": "application/json", "Accept": stream ? "text/event-stream, application/json" : "application/json" },
       body: JSON.stringify(body || {}),
       credentials: "omit",
       cache: "no-store"
     }).then(function (res) {
       var ct = res.headers.get("Content-Type") || "";
-      if (ct.indexOf("text/event-stream") === 0 && res.body && res.body.getReader) {
-        return readEvents(res.body.getReader(), onEvent);
-      }
-      return res.json().then(function (data) {
-        if (!res.ok) { onEvent("error", data); return; }
-        onEvent("done", data);
-      });
+      if (ct.indexOf("text/event-stream") === 0) return readEvents(res.body.getReader(), onEvent);
+      return res.json().then(function (data) { onEvent(res.ok ? "done" : "error", data); });
     });
   }
   function readEvents(reader, onEvent) {
-    var dec = new TextDecoder();
-    var buf = "";
+    var dec = new TextDecoder(), buf = "", ended = false;
     function pump() {
       return reader.read().then(function (r) {
-        if (r.done) return;
+        if (r.done) {
+          if (!ended) throw new Error("stream ended early");
+          return;
+        }
         buf += dec.decode(r.value, { stream: true });
         var i;
         while ((i = buf.indexOf("\n\n")) >= 0) {
-          var block = buf.slice(0, i);
+          var block = buf.slice(0, i), ev = "message", data = "";
           buf = buf.slice(i + 2);
-          var ev = "message", data = "";
           block.split("\n").forEach(function (line) {
             if (line.indexOf("event:") === 0) ev = line.slice(6).trim();
             else if (line.indexOf("data:") === 0) data += line.slice(5).replace(/^ /, "");
           });
+          if (ev === "done" || ev === "error") ended = true;
           onEvent(ev, data ? JSON.parse(data) : {});
         }
         return pump();
@@ -136,46 +163,52 @@
     return pump();
   }
 
-  function streamModel(path, body, sentText) {
+  // ask has the server write a model turn (after a reply, or the owed one)
+  // and shows it. If the stream breaks, the same request is sent again as
+  // plain JSON: the client_id makes it the same reply, never a second one.
+  function ask(path, body, sentText) {
     var text = "";
     setBusy(true);
     showAlert("");
-    return post(path, body, function (ev, d) {
+    function clearDraft() { text = ""; draftText.textContent = ""; draft.hidden = true; }
+    function onEvent(ev, d) {
       if (ev === "saved") {
-        if (sentText !== undefined) { addMessage("respondent", sentText); box.value = ""; saveDraft(); put(pendingKey, null); toBottom(); }
+        if (sentText !== undefined) { addMessage("respondent", sentText); box.value = ""; saveDraft(); toBottom(); }
       } else if (ev === "chunk") {
-        var stick = (draft.hidden && sentText !== undefined) || nearBottom();
+        if (calm) return;
+        var stick = draft.hidden || nearBottom();
         text += d.text;
         draft.hidden = false;
-        draft.querySelector("p").textContent = text;
+        draftText.textContent = text;
         if (stick) toBottom();
       } else if (ev === "reset") {
-        text = "";
-        draft.querySelector("p").textContent = "";
+        clearDraft();
       } else if (ev === "done") {
-        draft.hidden = true;
-        draft.querySelector("p").textContent = "";
+        clearDraft();
         put(pendingKey, null);
+        if (sentText !== undefined && box.value === sentText) { box.value = ""; saveDraft(); }
+        var stick = sentText !== undefined || nearBottom();
         busy = false;
-        status.textContent = "";
-        var stickDone = sentText !== undefined || nearBottom();
-        renderLog(d.state);
+        syncLog(d.state.messages);
         render(d.state);
-        if (stickDone) toBottom();
-        if (sentText !== undefined) box.focus();
+        if (stick) toBottom();
       } else if (ev === "error") {
-        draft.hidden = true;
+        clearDraft();
         busy = false;
-        status.textContent = "";
-        if (d.state) { renderLog(d.state); render(d.state); }
-        showAlert(d.rule === "too_short" || d.rule === "too_long" || d.rule === "empty" ? d.error : (d.state && d.state.failed ? T.model_failed : (d.error || T.server_error)));
-        if (d.rule && sentText !== undefined && !(d.state && d.state.failed)) box.focus();
+        if (d.state) { syncLog(d.state.messages); render(d.state); } else if (state) render(state);
+        var failed = d.state && d.state.failed;
+        if (!d.state || !failed) put(pendingKey, null);
+        showAlert(failed ? T.model_failed : ruleText(d.rule));
+        if (failed) retry.focus();
       }
+    }
+    return post(path, body, onEvent, canStream).catch(function () {
+      clearDraft();
+      return post(path, body, onEvent, false);
     }).catch(function () {
       busy = false;
-      draft.hidden = true;
       showAlert(T.network_failed);
-      return refresh();
+      if (state) render(state);
     });
   }
 
@@ -183,37 +216,48 @@
     return fetch(base + "/state", { credentials: "omit", cache: "no-store" })
       .then(function (r) { return r.json(); })
       .then(function (s) {
-        renderLog(s);
+        syncLog(s.messages);
         render(s);
         // Back in a conversation already under way: show where it stands.
         if (s.replies_used > 0) toBottom();
-        if (s.owed && !s.failed && !busy) return streamModel("/resume", {});
+        if (s.owed && !s.failed && !busy) return ask("/resume", {});
+        if (s.failed) showAlert(T.model_failed);
       })
       .catch(function () { showAlert(T.network_failed); });
   }
 
   form.addEventListener("submit", function (e) {
     e.preventDefault();
+    box.focus();
     if (busy || !state || !state.can_reply) return;
     var text = box.value;
-    if (!text.trim()) { showAlert(T.too_short); box.focus(); return; }
-    var pending = get(pendingKey);
-    var id = pending && pending.indexOf(text.length + ":") === 0 ? pending.split(":")[1] : newID();
-    put(pendingKey, text.length + ":" + id);
-    streamModel("/reply", { text: text, client_id: id }, text);
+    if (!text.trim()) { showAlert(T.empty); return; }
+    // The same text sent again after a failure keeps its id, so the server
+    // stores it once.
+    var pending = null;
+    try { pending = JSON.parse(get(pendingKey)); } catch (err) { /* none kept */ }
+    var id = pending && pending.text === text ? pending.id : newID();
+    put(pendingKey, JSON.stringify({ text: text, id: id }));
+    ask("/reply", { text: text, client_id: id }, text);
   });
   box.addEventListener("input", saveDraft);
   box.addEventListener("keydown", function (e) {
     if (e.key === "Enter" && (e.ctrlKey || e.metaKey)) { e.preventDefault(); form.requestSubmit(); }
   });
-  retry.addEventListener("click", function () { streamModel("/resume", {}).then(function () { box.focus(); }); });
+  retry.addEventListener("click", function () {
+    ask("/resume", {}).then(function () { if (!box.disabled && !form.hidden) box.focus(); });
+  });
   cont.addEventListener("click", function () {
     cont.disabled = true;
     fetch(base + "/finish", { method: "POST", headers: { "Accept": "application/json" }, credentials: "omit" })
       .then(function (r) { return r.json().then(function (d) { return { ok: r.ok, d: d }; }); })
       .then(function (x) {
-        if (!x.ok) { cont.disabled = false; showAlert(x.d.error || T.server_error); return; }
-        status.textContent = T.finished;
+        cont.disabled = false;
+        if (!x.ok) { showAlert(ruleText(x.d.rule)); return; }
+        leaving = true;
+        put(draftKey, null);
+        showAlert("");
+        say(T.finished);
         var d = x.d;
         if (window.parent !== window) {
           try {
