@@ -82,11 +82,9 @@ func (s *Store) LoadDataset(ctx context.Context, study string) (*Dataset, error)
 	}
 	for _, sess := range d.Sessions {
 		d.RIDKeys[sess.ID] = RIDKey(d.Secret, sess.RID)
-		ts, err := s.Turns(ctx, sess.ID)
-		if err != nil {
-			return nil, err
-		}
-		d.Turns = append(d.Turns, ts...)
+	}
+	if d.Turns, err = scanTurns(s.rs.QueryContext(ctx, turnSelect+` WHERE session_id IN (SELECT id FROM sessions WHERE study_id = ?) ORDER BY session_id, idx`, study)); err != nil {
+		return nil, fmt.Errorf("turns of %q: %w", study, err)
 	}
 	if d.Chain, err = s.Chain(ctx, study); err != nil {
 		return nil, err

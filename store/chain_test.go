@@ -437,3 +437,58 @@ func TestClosedStudyRefusesNewRespondents(t *testing.T) {
 		t.Fatalf("close unknown: got %v, want ErrNotFound", err)
 	}
 }
+
+// BenchmarkVerify measures loading and checking a study of 5,000 sessions
+// and 60,000 turns (12 per session), with its chain and allocation audit.
+// Building the study takes a while and is not timed.
+func BenchmarkVerify(b *testing.B) {
+	ctx := context.Background()
+	st, _, sv, as := mustDemo(b)
+	allow := func([]store.Turn, bool) error { return nil }
+	const sessions, perSession = 5000, 6
+	work := make(chan int)
+	errs := make(chan error, 64)
+	for range 64 {
+		go func() {
+			for i := range work {
+				lean := []string{"left", "centre", "right"}[i%3]
+				sess, _, err := st.Enter(ctx, sv, "lean="+lean, respondent(fmt.Sprintf("bench-%d", i), lean), as)
+				if err != nil {
+					errs <- err
+					return
+				}
+				for j := range perSession {
+					a, err := st.AddReply(ctx, sess, fmt.Sprintf("reply %d of respondent %d about the gorge", j, i), fmt.Sprint(j), allow)
+					if err == nil {
+						_, err = st.AddModelTurn(ctx, store.Turn{SessionID: sess.ID, Index: a.Turn.Index + 1, Text: "an answer about the cable car " + fmt.Sprint(j),
+							StartedAt: time.Now(), ModelRequested: "scripted", ModelReported: "scripted", SystemSHA256: "s", RequestSHA256: "r", StudyHash: sess.StudyHash})
+					}
+					if err != nil {
+						errs <- err
+						return
+					}
+				}
+			}
+			errs <- nil
+		}()
+	}
+	for i := range sessions {
+		work <- i
+	}
+	close(work)
+	for range 64 {
+		if err := <-errs; err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ResetTimer()
+	for b.Loop() {
+		d, err := st.LoadDataset(ctx, sv.ID)
+		if err != nil {
+			b.Fatal(err)
+		}
+		if r := d.Check(); !r.OK() || r.Turns != sessions*perSession*2 {
+			b.Fatalf("got ok %v with %d turns", r.OK(), r.Turns)
+		}
+	}
+}

@@ -71,9 +71,17 @@ const turnSelect = `SELECT session_id, idx, role, text, COALESCE(client_id, ''),
 	COALESCE(system_sha256, ''), COALESCE(request_sha256, ''), text_sha256, study_hash FROM turns`
 
 func turns(ctx context.Context, q queryer, sessionID int64) ([]Turn, error) {
-	rows, err := q.QueryContext(ctx, turnSelect+` WHERE session_id = ? ORDER BY idx`, sessionID)
+	out, err := scanTurns(q.QueryContext(ctx, turnSelect+` WHERE session_id = ? ORDER BY idx`, sessionID))
 	if err != nil {
 		return nil, fmt.Errorf("turns of session %d: %w", sessionID, err)
+	}
+	return out, nil
+}
+
+// scanTurns reads the rows of a turnSelect query.
+func scanTurns(rows *sql.Rows, err error) ([]Turn, error) {
+	if err != nil {
+		return nil, err
 	}
 	defer rows.Close()
 	var out []Turn
@@ -83,7 +91,7 @@ func turns(ctx context.Context, q queryer, sessionID int64) ([]Turn, error) {
 		if err := rows.Scan(&t.SessionID, &t.Index, &t.Role, &t.Text, &t.ClientID, &started, &created, &t.LatencyMS,
 			&t.ModelRequested, &t.ModelReported, &t.Fingerprint, &t.Params, &t.PromptTokens, &t.CompletionTokens,
 			&t.Retries, &t.FinishReason, &t.SystemSHA256, &t.RequestSHA256, &t.TextSHA256, &t.StudyHash); err != nil {
-			return nil, fmt.Errorf("turns of session %d: %w", sessionID, err)
+			return nil, err
 		}
 		if t.StartedAt, err = parseTime(started); err != nil {
 			return nil, err
@@ -93,10 +101,7 @@ func turns(ctx context.Context, q queryer, sessionID int64) ([]Turn, error) {
 		}
 		out = append(out, t)
 	}
-	if err := rows.Err(); err != nil {
-		return nil, fmt.Errorf("turns of session %d: %w", sessionID, err)
-	}
-	return out, nil
+	return out, rows.Err()
 }
 
 // Added is the outcome of AddReply.
