@@ -199,6 +199,7 @@
         var failed = d.state && d.state.failed;
         if (!d.state || !failed) put(pendingKey, null);
         showAlert(failed ? T.model_failed : ruleText(d.rule));
+        toBottom();
         if (failed) retry.focus();
       }
     }
