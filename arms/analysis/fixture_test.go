@@ -150,3 +150,20 @@ func needTool(t *testing.T, path string) string {
 	}
 	return p
 }
+
+// needPython finds Debian's Python (/usr/bin/python3: the default python3
+// may be another installation without Debian's packages) with the given
+// modules, under the same rule as needTool.
+func needPython(t *testing.T, modules ...string) string {
+	t.Helper()
+	python := needTool(t, "/usr/bin/python3")
+	for _, m := range modules {
+		if err := exec.Command(python, "-c", "import "+m).Run(); err != nil {
+			if os.Getenv("TRIALOGUE_REQUIRE_REFERENCE") != "" {
+				t.Fatalf("Python module %s is required (TRIALOGUE_REQUIRE_REFERENCE is set) but cannot be imported: %v", m, err)
+			}
+			t.Skipf("Python module %s is missing; install Debian's python3-%s or set TRIALOGUE_REQUIRE_REFERENCE to fail instead", m, m)
+		}
+	}
+	return python
+}

@@ -1,0 +1,223 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"io"
+	"os"
+	"path/filepath"
+	"strings"
+
+	"trialogue/arms"
+	"trialogue/arms/analysis"
+	"trialogue/store"
+)
+
+const effectsUsage = `usage: trialogue effects --db PATH --study ID --outcomes FILE.csv --id COLUMN --outcome COLUMN[,COLUMN...]
+         [--pre COLUMN] [--covariates a,b,...] --control ARM[,ARM...] [--adjust none|pre|lin] [--change]
+         [--permutations N] [--seed N] [--exclude-flagged] [--out DIR]`
+
+// effectsFlags are the effects command's options.
+type effectsFlags struct {
+	db, study, outcomes, out string
+	outcomeCols              []string
+	spec                     analysis.Spec
+	excludeFlagged           bool
+}
+
+func splitList(v string) []string {
+	var out []string
+	for _, p := range strings.Split(v, ",") {
+		if p = strings.TrimSpace(p); p != "" {
+			out = append(out, p)
+		}
+	}
+	return out
+}
+
+func parseEffectsFlags(args []string, stderr io.Writer) (*effectsFlags, error) {
+	fs := flag.NewFlagSet("trialogue effects", flag.ContinueOnError)
+	fs.SetOutput(stderr)
+	fs.Usage = func() { fmt.Fprintln(stderr, effectsUsage); fs.PrintDefaults() }
+	f := &effectsFlags{}
+	var outcome, covs, control string
+	fs.StringVar(&f.db, "db", "trialogue.db", "SQLite database `file`")
+	fs.StringVar(&f.study, "study", "", "study `id`")
+	fs.StringVar(&f.outcomes, "outcomes", "", "outcome `file` exported by the survey (CSV, comma or semicolon)")
+	fs.StringVar(&f.spec.ID, "id", "", "outcome-file `column` holding the respondent id (rid)")
+	fs.StringVar(&outcome, "outcome", "", "outcome `column`s, comma-separated")
+	fs.StringVar(&f.spec.Pre, "pre", "", "pre-treatment measure `column`")
+	fs.StringVar(&covs, "covariates", "", "covariates for Lin and balance: study covariates or file columns, `a,b,...`")
+	fs.StringVar(&control, "control", "", "arms pooled as the control, `ARM,ARM`")
+	fs.StringVar(&f.spec.Adjust, "adjust", analysis.AdjustNone, "adjustment: none, pre or lin")
+	fs.BoolVar(&f.spec.Change, "change", false, "analyse the outcome minus the pre-treatment measure")
+	fs.IntVar(&f.spec.Permutations, "permutations", analysis.DefaultPermutations, "randomization-inference re-draws (0 skips them)")
+	var seed uint64 = 1
+	fs.Uint64Var(&seed, "seed", seed, "master `seed` of the randomization-inference re-draws")
+	fs.BoolVar(&f.excludeFlagged, "exclude-flagged", false, "leave out sessions whose transcripts are flagged")
+	fs.StringVar(&f.out, "out", "", "`folder` for effects.csv, balance.csv, attrition.csv, effects.json and effects.svg")
+	if err := fs.Parse(args); err != nil {
+		return nil, err
+	}
+	if fs.NArg() > 0 {
+		return nil, fmt.Errorf("unexpected argument %q", fs.Arg(0))
+	}
+	f.spec.Seed = seed
+	f.outcomeCols = splitList(outcome)
+	f.spec.Covariates = splitList(covs)
+	f.spec.Control = splitList(control)
+	var missing []string
+	for _, m := range []struct{ name, v string }{{"--study", f.study}, {"--outcomes", f.outcomes}, {"--id", f.spec.ID}, {"--outcome", outcome}} {
+		if m.v == "" {
+			missing = append(missing, m.name)
+		}
+	}
+	if len(missing) > 0 {
+		return nil, fmt.Errorf("missing %s\n%s", strings.Join(missing, ", "), effectsUsage)
+	}
+	if f.excludeFlagged {
+		return nil, errors.New("--exclude-flagged: transcript flags are not available yet in this version of Trialogue; run without it")
+	}
+	return f, nil
+}
+
+// runEffects estimates each treatment arm's effect on the outcomes.
+func runEffects(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	f, err := parseEffectsFlags(args, stderr)
+	if err != nil {
+		if errors.Is(err, flag.ErrHelp) {
+			return exitOK
+		}
+		fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
+		return exitUsage
+	}
+	study, units, code := loadDesign(ctx, f.db, f.study, stderr)
+	if code != exitOK {
+		return code
+	}
+	file, err := os.Open(f.outcomes)
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
+		return exitUsage
+	}
+	tab, err := analysis.ReadOutcomes(file, filepath.Base(f.outcomes))
+	file.Close()
+	if err != nil {
+		return analysisFailed(stderr, "effects", err)
+	}
+	var reps []*analysis.Report
+	for _, col := range f.outcomeCols {
+		spec := f.spec
+		spec.Outcome = col
+		rep, err := analysis.Analyze(study, units, tab, spec)
+		if err != nil {
+			return analysisFailed(stderr, "effects", err)
+		}
+		reps = append(reps, rep)
+	}
+	for i, rep := range reps {
+		if i > 0 {
+			fmt.Fprintln(stdout)
+		}
+		if err := analysis.WriteText(stdout, rep); err != nil {
+			fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
+			return exitFail
+		}
+	}
+	if f.out != "" {
+		if err := writeEffectsFiles(f.out, reps); err != nil {
+			fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
+			return exitFail
+		}
+		fmt.Fprintf(stdout, "\nWrote effects.csv, balance.csv, attrition.csv, effects.json and effects.svg to %s\n", f.out)
+	}
+	return exitOK
+}
+
+// analysisFailed prints an analysis error; bad input exits 2.
+func analysisFailed(stderr io.Writer, cmd string, err error) int {
+	var ie *analysis.InputError
+	if errors.As(err, &ie) {
+		for _, p := range ie.Problems {
+			fmt.Fprintf(stderr, "trialogue %s: %s\n", cmd, p)
+		}
+		return exitUsage
+	}
+	fmt.Fprintf(stderr, "trialogue %s: %v\n", cmd, err)
+	return exitFail
+}
+
+// loadDesign reads the study's newest version and its sessions.
+func loadDesign(ctx context.Context, db, id string, stderr io.Writer) (*arms.Study, []analysis.Unit, int) {
+	if _, err := os.Stat(db); err != nil {
+		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", db, err)
+		return nil, nil, exitUsage
+	}
+	st, err := store.Open(ctx, db, store.Options{})
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return nil, nil, exitFail
+	}
+	defer st.Close()
+	sv, err := st.Study(ctx, id)
+	if errors.Is(err, store.ErrNotFound) {
+		fmt.Fprintf(stderr, "trialogue: study %q is not in %s\n", id, db)
+		return nil, nil, exitUsage
+	}
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return nil, nil, exitFail
+	}
+	canon, err := st.StudyCanonical(ctx, id, sv.Version)
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return nil, nil, exitFail
+	}
+	study, err := arms.FromCanonical(canon)
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return nil, nil, exitFail
+	}
+	sessions, err := st.Sessions(ctx, id)
+	if err != nil {
+		fmt.Fprintf(stderr, "trialogue: %v\n", err)
+		return nil, nil, exitFail
+	}
+	units := make([]analysis.Unit, len(sessions))
+	for i, s := range sessions {
+		units[i] = analysis.Unit{RID: s.RID, Arm: s.Arm, Stratum: s.Stratum, Slot: s.Slot, Finished: s.Finished(), Covariates: s.Covariates}
+	}
+	return study, units, exitOK
+}
+
+func writeEffectsFiles(dir string, reps []*analysis.Report) error {
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		return fmt.Errorf("create %s: %w", dir, err)
+	}
+	write := func(name string, fn func(io.Writer) error) error {
+		path := filepath.Join(dir, name)
+		file, err := os.Create(path)
+		if err != nil {
+			return fmt.Errorf("create %s: %w", path, err)
+		}
+		if err := fn(file); err != nil {
+			file.Close()
+			return err
+		}
+		if err := file.Close(); err != nil {
+			return fmt.Errorf("write %s: %w", path, err)
+		}
+		return nil
+	}
+	// Balance does not depend on the outcome; attrition is that of the
+	// first outcome (the JSON has every outcome's).
+	return errors.Join(
+		write("effects.csv", func(w io.Writer) error { return analysis.WriteEffectsCSV(w, reps) }),
+		write("balance.csv", func(w io.Writer) error { return analysis.WriteBalanceCSV(w, reps[0]) }),
+		write("attrition.csv", func(w io.Writer) error { return analysis.WriteAttritionCSV(w, reps[0]) }),
+		write("effects.json", func(w io.Writer) error { return analysis.WriteJSON(w, reps) }),
+		write("effects.svg", func(w io.Writer) error { return analysis.WriteCoefPlot(w, reps) }),
+	)
+}
