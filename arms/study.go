@@ -57,11 +57,53 @@ type Study struct {
 	// Translations override catalogue strings per language, by language
 	// code: for a study offering several languages, what Texts is for Language.
 	Translations map[string]map[string]string `yaml:"translations" json:"translations,omitempty"`
+	// Probes are fixed conversations replayed against the arms' endpoints
+	// to detect a change of model behaviour (trialogue drift).
+	Probes []Probe `yaml:"probes" json:"probes,omitempty"`
+	// Drift tunes the drift check; defaults apply where it is absent.
+	Drift *DriftSettings `yaml:"drift" json:"drift,omitempty"`
 
 	// ArmOrder is the order in which arms are declared in the file,
 	// recovered from the YAML. It is part of the canonical form: the
 	// allocation sequence and the default arm codes follow it.
 	ArmOrder []string `yaml:"-" json:"arm_order"`
+}
+
+// Probe is a fixed respondent: a profile of covariates and the replies it
+// gives, played against some or all model arms.
+type Probe struct {
+	Name       string            `yaml:"name" json:"name"`
+	Arms       []string          `yaml:"arms" json:"arms,omitempty"` // default: every message and chat arm
+	Covariates map[string]Scalar `yaml:"covariates" json:"covariates"`
+	Replies    []string          `yaml:"replies" json:"replies,omitempty"`
+}
+
+// DriftSettings are how often probes are played and when a difference
+// warns or fails (see trialogue/arms/drift for their meaning).
+type DriftSettings struct {
+	Runs           int      `yaml:"runs" json:"runs,omitempty"` // default 5
+	ExactWarn      *float64 `yaml:"exact_warn" json:"exact_warn,omitempty"`
+	ExactFail      *float64 `yaml:"exact_fail" json:"exact_fail,omitempty"`
+	SimilarityWarn *float64 `yaml:"similarity_warn" json:"similarity_warn,omitempty"`
+	SimilarityFail *float64 `yaml:"similarity_fail" json:"similarity_fail,omitempty"`
+	KSWarn         *float64 `yaml:"ks_warn" json:"ks_warn,omitempty"`
+	KSFail         *float64 `yaml:"ks_fail" json:"ks_fail,omitempty"`
+}
+
+// Scalar is a YAML scalar read as text, so that a probe may write age: 52.
+type Scalar string
+
+// UnmarshalYAML reads any scalar as its text.
+func (s *Scalar) UnmarshalYAML(b []byte) error {
+	v := strings.TrimSpace(string(b))
+	if strings.HasPrefix(v, "[") || strings.HasPrefix(v, "{") || strings.Contains(v, "\n") {
+		return fmt.Errorf("expected a single value, got %q", v)
+	}
+	if len(v) >= 2 && (v[0] == '"' || v[0] == '\'') && v[len(v)-1] == v[0] {
+		v = v[1 : len(v)-1]
+	}
+	*s = Scalar(v)
+	return nil
 }
 
 // Covariate is a pre-treatment variable that the survey passes in the entry link.

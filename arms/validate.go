@@ -60,6 +60,7 @@ func (v *validator) validate() {
 	v.arms()
 	v.allocation()
 	v.returnURL()
+	v.probes()
 	if len(v.probs.List) == 0 {
 		v.trialRender()
 	}
@@ -409,6 +410,79 @@ func fieldRefs(n parse.Node) [][]string {
 	return out
 }
 
+// probes checks the drift probes: known model arms, valid covariates,
+// replies for chats.
+func (v *validator) probes() {
+	s := v.s
+	seen := map[string]bool{}
+	for i, pr := range s.Probes {
+		at := p("probes", strconv.Itoa(i))
+		if !armNamePattern.MatchString(pr.Name) || seen[pr.Name] {
+			v.at(append(at, "name"), "probe name %q must be unique and use lowercase letters, digits, - and _", pr.Name)
+		}
+		seen[pr.Name] = true
+		for j, a := range pr.Arms {
+			arm, ok := s.Arms[a]
+			switch {
+			case !ok:
+				v.at(append(at, "arms", strconv.Itoa(j)), "probe %q names arm %q, which is not declared under arms", pr.Name, a)
+			case !arm.NeedsModel():
+				v.at(append(at, "arms", strconv.Itoa(j)), "probe %q names arm %q, a fixed text: probes play model-written arms", pr.Name, a)
+			}
+		}
+		for _, c := range s.Covariates {
+			val, given := pr.Covariates[c.Name]
+			if !given {
+				if c.Required {
+					v.at(append(at, "covariates"), "probe %q needs a value for the required covariate %q", pr.Name, c.Name)
+				}
+				continue
+			}
+			if _, err := c.Check(string(val)); err != nil {
+				v.at(append(at, "covariates", c.Name), "probe %q, covariate %q: %s", pr.Name, c.Name, err.Error())
+			}
+		}
+		for name := range pr.Covariates {
+			if _, ok := s.Covariate(name); !ok {
+				v.at(append(at, "covariates", name), "probe %q sets %q, which is not a declared covariate", pr.Name, name)
+			}
+		}
+		for _, a := range s.ProbeArms(pr) {
+			if arm := s.Arms[a]; arm != nil && arm.Kind == KindChat && len(pr.Replies) == 0 && !arm.Opening {
+				v.at(at, "probe %q plays chat arm %q but gives no replies", pr.Name, a)
+			}
+		}
+	}
+	if d := s.Drift; d != nil {
+		if d.Runs < 0 || d.Runs > 100 {
+			v.at(p("drift", "runs"), "drift runs must be between 1 and 100")
+		}
+		for _, x := range []struct {
+			name string
+			v    *float64
+		}{{"exact_warn", d.ExactWarn}, {"exact_fail", d.ExactFail}, {"similarity_warn", d.SimilarityWarn}, {"similarity_fail", d.SimilarityFail}, {"ks_warn", d.KSWarn}, {"ks_fail", d.KSFail}} {
+			if x.v != nil && !(*x.v >= 0 && *x.v <= 1) {
+				v.at(p("drift", x.name), "drift %s must be between 0 and 1", x.name)
+			}
+		}
+	}
+}
+
+// ProbeArms lists the arms a probe plays, in declaration order.
+func (s *Study) ProbeArms(pr Probe) []string {
+	var out []string
+	for _, name := range s.ArmOrder {
+		a := s.Arms[name]
+		if a == nil || !a.NeedsModel() {
+			continue
+		}
+		if len(pr.Arms) == 0 || slices.Contains(pr.Arms, name) {
+			out = append(out, name)
+		}
+	}
+	return out
+}
+
 // trialRender renders every model arm's prompts for a range of made-up
 // respondents (each value of each choice covariate, and one without any
 // optional covariate), so that a template that fails at run time, such as a
@@ -577,4 +651,17 @@ func (v *validator) languages() {
 			v.at(p("translations", l), "translations for %q, which is neither the study's language nor one of its languages", l)
 		}
 	}
+}
+
+// Respondent returns the probe's made-up respondent.
+func (pr Probe) Respondent(s *Study) Respondent {
+	r := Respondent{RID: "probe-" + pr.Name, Covariates: map[string]string{}}
+	for _, c := range s.Covariates {
+		if v, ok := pr.Covariates[c.Name]; ok {
+			if norm, err := c.Check(string(v)); err == nil {
+				r.Covariates[c.Name] = norm
+			}
+		}
+	}
+	return r
 }

@@ -166,6 +166,18 @@ func (s *Store) WriteBundle(ctx context.Context, study string, w io.Writer, rele
 		}
 	}
 	put("chain.jsonl", bytes.Clone(lines.Bytes()))
+	lines.Reset()
+	runs, err := s.DriftRuns(ctx, study)
+	if err != nil {
+		return m, err
+	}
+	for _, r := range runs {
+		if err := jsonLine(&lines, map[string]any{"id": r.ID, "version": r.Version, "study_hash": r.StudyHash, "at": fmtTime(r.At),
+			"baseline": r.Baseline, "status": r.Status, "report": json.RawMessage(r.Report)}); err != nil {
+			return m, err
+		}
+	}
+	put("drift/reports.jsonl", bytes.Clone(lines.Bytes()))
 	put("README.md", []byte(bundleReadme(m)))
 	manifest, err := json.MarshalIndent(m, "", "  ")
 	if err != nil {
