@@ -15,6 +15,7 @@ import (
 
 	"github.com/chromedp/cdproto/cdp"
 	"github.com/chromedp/cdproto/emulation"
+	"github.com/chromedp/cdproto/page"
 	"github.com/chromedp/chromedp"
 	"github.com/chromedp/chromedp/kb"
 )
@@ -202,6 +203,15 @@ func emulate(width int64, scheme string) chromedp.Action[chromedp.Void] {
 	}
 }
 
+// addScript runs js in every document the tab opens from now on, before
+// the page's own scripts.
+func addScript(js string) chromedp.Action[chromedp.Void] {
+	return func(ctx context.Context, t *chromedp.Target) (chromedp.Void, error) {
+		_, err := cdp.Call(ctx, t, page.AddScriptToEvaluateOnNewDocument, page.AddScriptToEvaluateOnNewDocumentParams{Source: js})
+		return chromedp.Void{}, err
+	}
+}
+
 // enter follows the study's entry link for a new respondent and waits
 // until the page is ready for a reply.
 func (e *pageEnv) enter(t *testing.T, rid, lang string) {
@@ -338,6 +348,32 @@ func (e *pageEnv) auditState(t *testing.T, lang, state string) {
 	}
 }
 
+// phoneShot saves the page as a phone 360 CSS px wide shows it: in the
+// screenshots folder, and as README's picture (web/screenshot-phone.png)
+// when TRIALOGUE_README_SCREENSHOT=1.
+func (e *pageEnv) phoneShot(t *testing.T) {
+	t.Helper()
+	if err := chromedp.Do(e.tab, chromedp.EmulateViewport(360, 740, chromedp.EmulateMobile)); err != nil {
+		t.Fatal(err)
+	}
+	toBottom := `window.scrollTo(0, document.documentElement.scrollHeight); ""`
+	e.eval(t, toBottom)
+	png, err := chromedp.Run(e.tab, chromedp.CaptureScreenshot())
+	if err != nil {
+		t.Fatalf("phone screenshot: %v", err)
+	}
+	dst := filepath.Join(e.shots, "phone.png")
+	if os.Getenv("TRIALOGUE_README_SCREENSHOT") == "1" {
+		dst = "../../web/screenshot-phone.png"
+	}
+	if err := os.WriteFile(dst, png, 0o644); err != nil {
+		t.Fatal(err)
+	}
+	if err := chromedp.Do(e.tab, emulate(1280, "light")); err != nil {
+		t.Fatal(err)
+	}
+}
+
 // TestRespondentPageAccessible walks a respondent through every state of
 // the page (fresh, mid-chat, waiting, error, finished) in English and in
 // Arabic, and audits each with axe-core at 320 and 1280 CSS px.
@@ -359,6 +395,9 @@ func TestRespondentPageAccessible(t *testing.T) {
 				t.Errorf("focus after sending: got #%s, want #reply (the box keeps focus)", got)
 			}
 			e.auditState(t, lang, "mid-chat")
+			if lang == "en" {
+				e.phoneShot(t)
+			}
 
 			// Waiting: the model has written a first chunk and holds the rest.
 			e.model.set("hold")
@@ -397,4 +436,168 @@ func TestRespondentPageAccessible(t *testing.T) {
 			e.auditState(t, lang, "finished")
 		})
 	}
+}
+
+// press sends key presses to whatever has focus.
+func (e *pageEnv) press(t *testing.T, keys string, opts ...chromedp.KeyOption) {
+	t.Helper()
+	if err := chromedp.Do(e.tab, chromedp.KeyEvent(keys, opts...)); err != nil {
+		t.Fatalf("press %q: %v", keys, err)
+	}
+}
+
+// tabTo presses Tab until the element with id has focus.
+func (e *pageEnv) tabTo(t *testing.T, id string) {
+	t.Helper()
+	for range 12 {
+		if e.eval(t, `document.activeElement ? document.activeElement.id : ""`) == id {
+			return
+		}
+		e.press(t, kb.Tab)
+	}
+	t.Fatalf("Tab never reached #%s; focus is on %q", id, e.eval(t, `document.activeElement.outerHTML.slice(0, 80)`))
+}
+
+// TestKeyboardOnlyChat completes a whole chat with key presses alone
+// (WCAG 2.2 SC 2.1.1 Keyboard): Tab to the reply box, type, send with
+// Ctrl+Enter and with Enter on Send, Tab to Continue and press Enter. On
+// the way, a reload keeps the conversation and the unsent draft.
+func TestKeyboardOnlyChat(t *testing.T) {
+	e := newPageEnv(t)
+	e.enter(t, "KEYS-1", "es")
+	e.tabTo(t, "reply")
+	e.press(t, "¿Sale un ferry temprano?")
+	e.press(t, kb.Enter, chromedp.KeyModifiers(chromedp.ModifierCtrl))
+	e.wait(t, settled(2))
+	if got := e.eval(t, `document.activeElement.id`); got != "reply" {
+		t.Fatalf("focus after Ctrl+Enter: got #%s, want #reply", got)
+	}
+
+	// A draft survives a reload, with the conversation so far.
+	draft := "Y el último, ¿a qué hora sale?"
+	e.press(t, draft)
+	if err := chromedp.Do(e.tab, chromedp.Reload()); err != nil {
+		t.Fatal(err)
+	}
+	e.wait(t, settled(2)+` && !document.getElementById("send").disabled`)
+	if got := e.eval(t, `document.getElementById("reply").value`); got != draft {
+		t.Fatalf("draft after reload: got %q, want %q", got, draft)
+	}
+	e.tabTo(t, "reply")
+	e.tabTo(t, "send")
+	e.press(t, kb.Enter)
+	e.wait(t, settled(4)+` && !document.getElementById("continue").hidden`)
+	if got := e.eval(t, `document.activeElement.id`); got != "reply" {
+		t.Errorf("focus after Enter on Send: got #%s, want #reply", got)
+	}
+	if got := e.eval(t, `sessionStorage.getItem("trialogue:draft:" + document.getElementById("app").dataset.token) || ""`); got != "" {
+		t.Errorf("draft kept after sending: got %q, want none", got)
+	}
+
+	e.tabTo(t, "continue")
+	e.press(t, kb.Enter)
+	if err := chromedp.Do(e.tab, chromedp.WaitVisible(chromedp.ID("back"))); err != nil {
+		t.Fatalf("return to the survey: %v", err)
+	}
+	sess, err := e.m.Store.SessionByRID(context.Background(), "linden-ferry", "KEYS-1")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !sess.Finished() || sess.Language != "es" {
+		t.Errorf("session: got finished=%t language=%q, want finished in es", sess.Finished(), sess.Language)
+	}
+	turns, err := e.m.Store.Turns(context.Background(), sess.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(turns) != 4 || turns[2].Text != draft {
+		t.Errorf("got %d turns (third %q), want 4 with the reloaded draft sent third", len(turns), turns[min(2, len(turns)-1)].Text)
+	}
+}
+
+// pageBudget is the most the respondent page may load, page, script and
+// style together, uncompressed (the issue's budget: under 50 KB).
+const pageBudget = 50 * 1000
+
+// TestPageWeight loads the respondent page and sums what it fetched, as
+// the browser's Resource Timing reports it (W3C Resource Timing Level 2,
+// decodedBodySize and encodedBodySize): under the budget uncompressed,
+// and every part smaller on the wire than decoded.
+func TestPageWeight(t *testing.T) {
+	e := newPageEnv(t)
+	e.enter(t, "WEIGHT-1", "")
+	out := e.eval(t, `JSON.stringify(performance.getEntriesByType("navigation").concat(performance.getEntriesByType("resource"))
+		.filter(function (r) { return r.name.indexOf(location.origin) === 0 && r.initiatorType !== "fetch"; })
+		.map(function (r) { return {name: r.entryType === "navigation" ? "the page" : r.name.slice(location.origin.length), decoded: r.decodedBodySize, encoded: r.encodedBodySize}; }))`)
+	var parts []struct {
+		Name    string `json:"name"`
+		Decoded int    `json:"decoded"`
+		Encoded int    `json:"encoded"`
+	}
+	if err := json.Unmarshal([]byte(out), &parts); err != nil {
+		t.Fatal(err)
+	}
+	if len(parts) != 3 {
+		t.Fatalf("got %d loads (%s), want the page, chat.js and style.css", len(parts), out)
+	}
+	// The study's own texts (title, disclosure) are a few dozen bytes here
+	// and are counted with the rest, which only makes the check stricter.
+	total := 0
+	for _, p := range parts {
+		total += p.Decoded
+		t.Logf("%s: %d bytes, %d on the wire", p.Name, p.Decoded, p.Encoded)
+		if p.Encoded >= p.Decoded {
+			t.Errorf("%s: got %d bytes on the wire for %d decoded, want it compressed", p.Name, p.Encoded, p.Decoded)
+		}
+	}
+	t.Logf("total: %d bytes uncompressed", total)
+	if total >= pageBudget {
+		t.Errorf("got %d bytes uncompressed, want under %d", total, pageBudget)
+	}
+}
+
+// TestStreamingRespectsLayoutAndFallback: a streamed reply moves nothing
+// already on screen (Layout Instability API; web.dev's "good" Cumulative
+// Layout Shift is at most 0.1, and the page aims for none), and with no
+// readable response body the page falls back to plain JSON answers.
+func TestStreamingRespectsLayoutAndFallback(t *testing.T) {
+	e := newPageEnv(t)
+	t.Run("OKNoLayoutShift", func(t *testing.T) {
+		if err := chromedp.Do(e.tab, emulate(320, "light")); err != nil {
+			t.Fatal(err)
+		}
+		e.enter(t, "SHIFT-1", "")
+		e.eval(t, `window.__shift = 0; new PerformanceObserver(function (l) {
+			l.getEntries().forEach(function (s) { if (!s.hadRecentInput) window.__shift += s.value; });
+		}).observe({type: "layout-shift"}); ""`)
+		e.model.set("hold")
+		e.typeAndSend(t, "When does the cove ferry leave?")
+		e.wait(t, `!document.getElementById("draft").hidden`)
+		// the rest of the reply arrives well after the key press
+		if err := chromedp.Do(e.tab, chromedp.Sleep(700*time.Millisecond)); err != nil {
+			t.Fatal(err)
+		}
+		e.model.letGo()
+		e.wait(t, settled(2))
+		if got := e.eval(t, `String(window.__shift)`); got != "0" {
+			t.Errorf("got a layout shift score of %s while the reply streamed in, want 0", got)
+		}
+		e.model.set("answer")
+	})
+	t.Run("OKJSONWithoutStreaming", func(t *testing.T) {
+		// Hide the response body from the page's script, as a browser
+		// without readable streams would.
+		if err := chromedp.Do(e.tab, addScript(`Object.defineProperty(Response.prototype, "body", {get: function () { return null; }}); delete Response.prototype.body;`)); err != nil {
+			t.Fatal(err)
+		}
+		e.enter(t, "NOSTREAM-1", "")
+		if got := e.eval(t, `String("body" in Response.prototype)`); got != "false" {
+			t.Fatalf("got body in Response.prototype = %s, want false", got)
+		}
+		e.typeAndSend(t, "Is there a ferry on Sundays?")
+		e.wait(t, settled(2))
+		if got := e.eval(t, `document.querySelector("#log li.assistant p").textContent`); !strings.HasPrefix(got, "The morning ferry") {
+			t.Errorf("got reply %q, want the model's answer", got)
+		}
+	})
 }
