@@ -8,6 +8,7 @@ import (
 	"net/http/httptest"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
 	"sync"
 	"testing"
@@ -275,6 +276,24 @@ type axeViolation struct {
 // scrolling at the width of the viewport.
 func (e *pageEnv) audit(t *testing.T, label string) {
 	t.Helper()
+	vs := e.runAxe(t, label)
+	for _, v := range vs {
+		t.Errorf("%s: axe-core %s (%s): %s\n\t%s", label, v.ID, v.Impact, v.Help, strings.Join(v.Nodes, "\n\t"))
+	}
+	if len(vs) > 0 {
+		t.Errorf("%s: got %d axe-core violations, want 0", label, len(vs))
+	}
+	sw := e.eval(t, `document.documentElement.scrollWidth + " " + document.documentElement.clientWidth`)
+	var scroll, client int
+	fmt.Sscan(sw, &scroll, &client)
+	if scroll > client {
+		t.Errorf("%s: got a page %d px wide in a %d px viewport, want no horizontal scrolling (WCAG 2.2 SC 1.4.10 Reflow)", label, scroll, client)
+	}
+}
+
+// runAxe injects axe-core if needed, runs it and returns its violations.
+func (e *pageEnv) runAxe(t *testing.T, label string) []axeViolation {
+	t.Helper()
 	if _, err := chromedp.Run(e.tab, chromedp.Evaluate[bool](`typeof axe !== "undefined" || (function () {`+e.axe+`
 	; return true })()`)); err != nil {
 		t.Fatalf("%s: inject axe-core: %v", label, err)
@@ -303,18 +322,7 @@ func (e *pageEnv) audit(t *testing.T, label string) {
 	if res.Version != "4.14.1" {
 		t.Errorf("%s: got axe-core %s, want 4.14.1 as testdata/axe/package-lock.json pins", label, res.Version)
 	}
-	for _, v := range res.Violations {
-		t.Errorf("%s: axe-core %s (%s): %s\n\t%s", label, v.ID, v.Impact, v.Help, strings.Join(v.Nodes, "\n\t"))
-	}
-	if len(res.Violations) > 0 {
-		t.Errorf("%s: got %d axe-core violations, want 0", label, len(res.Violations))
-	}
-	sw := e.eval(t, `document.documentElement.scrollWidth + " " + document.documentElement.clientWidth`)
-	var scroll, client int
-	fmt.Sscan(sw, &scroll, &client)
-	if scroll > client {
-		t.Errorf("%s: got a page %d px wide in a %d px viewport, want no horizontal scrolling (WCAG 2.2 SC 1.4.10 Reflow)", label, scroll, client)
-	}
+	return res.Violations
 }
 
 // auditState audits the page in its current state at 320 and 1280 CSS px,
@@ -436,6 +444,18 @@ func TestRespondentPageAccessible(t *testing.T) {
 			e.auditState(t, lang, "finished")
 		})
 	}
+	// The audit finds what it should: an unlabelled text field breaks the
+	// axe-core rule "label" (WCAG 2.0 SC 4.1.2, 1.3.1).
+	t.Run("ErrUnlabelledFieldCaught", func(t *testing.T) {
+		e.eval(t, `document.querySelector("main").appendChild(document.createElement("input")); ""`)
+		var ids []string
+		for _, v := range e.runAxe(t, "with an unlabelled field") {
+			ids = append(ids, v.ID)
+		}
+		if !slices.Contains(ids, "label") {
+			t.Errorf("got violations %v, want label", ids)
+		}
+	})
 }
 
 // press sends key presses to whatever has focus.
