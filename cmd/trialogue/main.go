@@ -39,6 +39,7 @@ Commands:
   trialogue close --db PATH --study ID
   trialogue drift --db PATH --study ID [--runs N]
   trialogue effects --db PATH --study ID --outcomes FILE.csv --id COLUMN --outcome COLUMN --control ARM[,ARM] [--adjust none|pre|lin] [--out DIR]
+  trialogue arms-map --db PATH --study ID [--permutations N] [--out DIR]
 
 Run "trialogue COMMAND -h" for a command's flags.
 `
@@ -68,6 +69,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runDrift(ctx, args[1:], stdout, stderr)
 	case "effects":
 		return runEffects(ctx, args[1:], stdout, stderr)
+	case "arms-map":
+		return runArmsMap(ctx, args[1:], stdout, stderr)
 	case "help", "-h", "--help":
 		fmt.Fprint(stdout, usage())
 		return exitOK
