@@ -21,6 +21,11 @@ func (s *Server) handleEntry(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	w.Header().Set("Content-Security-Policy", csp(frameAncestors(st.Def)))
+	synthetic, err := s.syntheticMark(r)
+	if err != nil {
+		s.fail(w, r, err)
+		return
+	}
 	resp, err := st.Def.ParseEntry(r.URL.Query())
 	if err != nil {
 		var fe *arms.FieldError
@@ -44,7 +49,14 @@ func (s *Server) handleEntry(w http.ResponseWriter, r *http.Request) {
 		s.fail(w, r, err)
 		return
 	}
+	if created && synthetic {
+		if err := s.store.MarkSynthetic(r.Context(), sess.ID); err != nil {
+			s.fail(w, r, err)
+			return
+		}
+	}
 	if created {
+		s.assignedMetric(st.Def.ID, sess.Arm, synthetic)
 		s.log.Info("session entered", slog.String("study", st.Def.ID), slog.Int64("session", sess.ID))
 	}
 	w.Header().Set("Cache-Control", "no-store")

@@ -18,7 +18,6 @@ import (
 	"time"
 
 	"trialogue/arms"
-	"trialogue/arms/responder"
 	"trialogue/server"
 	"trialogue/store"
 	"trialogue/web"
@@ -190,7 +189,7 @@ func newFaultFixture(t *testing.T, model *faultModel, baseURL, timeout string, a
 	t.Cleanup(func() {
 		hs.Close()
 		for _, r := range study.Responders {
-			if o, ok := r.(*responder.OpenAI); ok {
+			if o, ok := r.(interface{ CloseIdleConnections() }); ok {
 				o.CloseIdleConnections()
 			}
 		}

@@ -32,6 +32,11 @@ type Config struct {
 	Demo bool
 	// MaxBody bounds request bodies, in bytes (default 64 KiB).
 	MaxBody int64
+	// Limits are the rate limits on entries and replies (zero: none).
+	Limits Limits
+	// SyntheticKey, when set, lets a client sending it in the
+	// Trialogue-Synthetic header mark its sessions synthetic. Secret.
+	SyntheticKey string
 }
 
 // Server handles respondents' requests for the studies it was given.
@@ -46,6 +51,9 @@ type Server struct {
 	versions map[string]*Study // older versions that sessions still run under, by id@version
 
 	locks sessionLocks
+
+	entryLimits, replyLimits *limiters // nil: no limit
+	metrics                  *metrics
 
 	// Now is the clock, a seam for tests.
 	Now func() time.Time
@@ -72,7 +80,9 @@ func New(st *store.Store, assets *web.Assets, cfg Config) *Server {
 		cfg.MaxBody = 64 << 10
 	}
 	return &Server{store: st, assets: assets, log: cfg.Logger, cfg: cfg,
-		studies: map[string]*Study{}, versions: map[string]*Study{}, Now: time.Now}
+		studies: map[string]*Study{}, versions: map[string]*Study{}, Now: time.Now,
+		entryLimits: newLimiters(cfg.Limits.EntryRate, cfg.Limits.EntryBurst),
+		replyLimits: newLimiters(cfg.Limits.ReplyRate, cfg.Limits.ReplyBurst), metrics: newMetrics()}
 }
 
 // AddStudy registers a study file with the database (a changed file
@@ -100,6 +110,9 @@ func (s *Server) build(def *arms.Study, sv store.StudyVersion) (*Study, error) {
 	resp, err := Responders(def, s.cfg.Getenv)
 	if err != nil {
 		return nil, err
+	}
+	for name, r := range resp {
+		resp[name] = s.metrics.observeResponder(def.ID, name, r)
 	}
 	return &Study{Def: def, Version: sv, Plan: plan, Responders: resp}, nil
 }
@@ -194,19 +207,19 @@ func (s *Server) studyOf(ctx context.Context, sess store.Session) (*Study, error
 // Handler returns the routes, with the middleware composed in one place.
 func (s *Server) Handler() http.Handler {
 	r := chi.NewRouter()
-	r.Use(s.recoverer, s.logRequests, securityHeaders, compress)
+	r.Use(s.recoverer, s.logRequests, s.observe, securityHeaders, compress)
 	r.Get("/healthz", func(w http.ResponseWriter, _ *http.Request) { w.Write([]byte("ok\n")) })
 	r.Get("/readyz", s.handleReady)
 	r.Get("/static/{name}", func(w http.ResponseWriter, r *http.Request) {
 		s.assets.ServeStatic(w, r, chi.URLParam(r, "name"))
 	})
-	r.Get("/s/{study}", s.handleEntry)
+	r.With(s.limitEntry).Get("/s/{study}", s.handleEntry)
 	r.Route("/c/{token}", func(r chi.Router) {
 		r.Use(s.withSession)
 		r.Get("/", s.handlePage)
 		r.Get("/state", s.handleState)
-		r.Post("/reply", s.handleReply)
-		r.Post("/resume", s.handleResume)
+		r.With(s.limitReplies).Post("/reply", s.handleReply)
+		r.With(s.limitReplies).Post("/resume", s.handleResume)
 		r.Post("/finish", s.handleFinish)
 	})
 	if s.cfg.Demo {
