@@ -28,7 +28,7 @@ func Redraw(seed []byte, sc assign.Scheme, stratum string, dst []int32, list []i
 		sum += r.Weight
 	}
 	for filled := 0; filled < len(dst); {
-		size := sc.Blocks[assign.Draw(src, len(sc.Blocks))]
+		size := sc.Blocks[drawSlot(src, len(sc.Blocks))]
 		list = list[:0]
 		for a, r := range sc.Arms {
 			for range r.Weight * size / sum {
@@ -36,12 +36,87 @@ func Redraw(seed []byte, sc assign.Scheme, stratum string, dst []int32, list []i
 			}
 		}
 		for i := size - 1; i >= 1; i-- {
-			j := assign.Draw(src, i+1)
+			j := drawSlot(src, i+1)
 			list[i], list[j] = list[j], list[i]
 		}
 		filled += copy(dst[filled:], list)
 	}
 	return list
+}
+
+// drawSlot is assign.Draw (step 3: rejection sampling, then x mod n) with the
+// divisions by the small sizes that blocks use written as constants, which
+// the compiler turns into multiplications: a re-draw of 100,000 slots is
+// otherwise dominated by 64-bit divisions. Larger n goes to assign.Draw.
+func drawSlot(src *rand.ChaCha8, n int) int {
+	switch n {
+	case 1:
+		src.Uint64()
+		return 0
+	case 2:
+		return int(src.Uint64() % 2) // 2^64 mod 2 = 0: no rejection
+	case 3:
+		return int(modConst3(src))
+	case 4:
+		return int(src.Uint64() % 4)
+	case 5:
+		return int(modConst5(src))
+	case 6:
+		return int(modConst6(src))
+	case 8:
+		return int(src.Uint64() % 8)
+	case 10:
+		return int(modConst10(src))
+	case 12:
+		return int(modConst12(src))
+	}
+	return assign.Draw(src, n)
+}
+
+// The limits are 2^64 - 1 - (2^64 mod n): values above them are rejected.
+func modConst3(src *rand.ChaCha8) uint64 {
+	const limit = ^uint64(0) - (^uint64(0)%3+1)%3
+	for {
+		if x := src.Uint64(); x <= limit {
+			return x % 3
+		}
+	}
+}
+
+func modConst5(src *rand.ChaCha8) uint64 {
+	const limit = ^uint64(0) - (^uint64(0)%5+1)%5
+	for {
+		if x := src.Uint64(); x <= limit {
+			return x % 5
+		}
+	}
+}
+
+func modConst6(src *rand.ChaCha8) uint64 {
+	const limit = ^uint64(0) - (^uint64(0)%6+1)%6
+	for {
+		if x := src.Uint64(); x <= limit {
+			return x % 6
+		}
+	}
+}
+
+func modConst10(src *rand.ChaCha8) uint64 {
+	const limit = ^uint64(0) - (^uint64(0)%10+1)%10
+	for {
+		if x := src.Uint64(); x <= limit {
+			return x % 10
+		}
+	}
+}
+
+func modConst12(src *rand.ChaCha8) uint64 {
+	const limit = ^uint64(0) - (^uint64(0)%12+1)%12
+	for {
+		if x := src.Uint64(); x <= limit {
+			return x % 12
+		}
+	}
 }
 
 // drawSeed derives the seed of re-draw d from the master seed: fresh seeds,
