@@ -19,6 +19,7 @@ type Version struct {
 	Hash      string `json:"hash"`
 	Canonical string `json:"canonical"`
 	CreatedAt string `json:"created_at"`
+	Source    string `json:"-"` // the study file, where known
 }
 
 // Dataset is everything an auditor checks about a study, from the
@@ -61,13 +62,13 @@ func (s *Store) LoadDataset(ctx context.Context, study string) (*Dataset, error)
 	if err := s.rs.QueryRowContext(ctx, `SELECT secret, seed FROM studies WHERE id = ?`, study).Scan(&d.Secret, &d.Seed); err != nil {
 		return nil, fmt.Errorf("study %q: %w", study, notFound(err))
 	}
-	rows, err := s.rs.QueryContext(ctx, `SELECT version, hash, canonical, created_at FROM study_versions WHERE study_id = ? ORDER BY version`, study)
+	rows, err := s.rs.QueryContext(ctx, `SELECT version, hash, canonical, created_at, source FROM study_versions WHERE study_id = ? ORDER BY version`, study)
 	if err != nil {
 		return nil, fmt.Errorf("versions of %q: %w", study, err)
 	}
 	for rows.Next() {
 		var v Version
-		if err := rows.Scan(&v.Version, &v.Hash, &v.Canonical, &v.CreatedAt); err != nil {
+		if err := rows.Scan(&v.Version, &v.Hash, &v.Canonical, &v.CreatedAt, &v.Source); err != nil {
 			rows.Close()
 			return nil, fmt.Errorf("versions of %q: %w", study, err)
 		}
@@ -139,6 +140,14 @@ func (d *Dataset) Check() Report {
 	for _, v := range d.Versions {
 		if got := codes.SHA256Hex([]byte(v.Canonical)); got != v.Hash {
 			bad("study version %d: its canonical form hashes to %s, not to its recorded hash %s", v.Version, short(got), short(v.Hash))
+		}
+		if v.Source != "" {
+			def, err := arms.Parse(fmt.Sprintf("version %d", v.Version), []byte(v.Source))
+			if err != nil {
+				bad("study version %d: its study file no longer parses: %v", v.Version, err)
+			} else if h, err := def.Hash(); err != nil || h != v.Hash {
+				bad("study version %d: its study file hashes to %s, not to its recorded hash %s", v.Version, short(h), short(v.Hash))
+			}
 		}
 		if h, ok := versions[v.Version]; !ok || h != v.Hash {
 			bad("study version %d: the chain does not log it with hash %s", v.Version, short(v.Hash))

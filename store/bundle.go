@@ -364,6 +364,14 @@ func ReadBundle(path string) (*Bundle, error) {
 	if err := json.Unmarshal(files["study/versions.json"], &d.Versions); err != nil {
 		return nil, fmt.Errorf("%s: study/versions.json: %w", path, err)
 	}
+	for i, v := range d.Versions {
+		name := fmt.Sprintf("study/v%d/study.yaml", v.Version)
+		src, err := need(name)
+		if err != nil {
+			return nil, err
+		}
+		d.Versions[i].Source = string(src)
+	}
 	if !m.Sealed {
 		seed, err := hex.DecodeString(strings.TrimSpace(string(files["allocation/seed.txt"])))
 		if err != nil {

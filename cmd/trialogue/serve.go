@@ -2,6 +2,7 @@ package main
 
 import (
 	"context"
+	"crypto/tls"
 	"errors"
 	"flag"
 	"fmt"
@@ -10,6 +11,7 @@ import (
 	"net"
 	"net/http"
 	"os"
+	"regexp"
 	"strings"
 	"time"
 
@@ -28,6 +30,10 @@ type Config struct {
 	Synchronous     string        // SQLite synchronous pragma: FULL or NORMAL
 	LogFormat       string        // text or json
 	ShutdownTimeout time.Duration // how long replies in flight may take to finish on SIGTERM
+	MetricsAddr     string        // where Prometheus /metrics is served; empty: nowhere
+	TLSCert, TLSKey string        // PEM files; both set: serve HTTPS
+	Limits          server.Limits // rate limits on entries and replies; TrustProxy is --trust-proxy
+	SyntheticKey    string        // secret, from TRIALOGUE_SYNTHETIC_KEY: lets trialogue simulate mark its sessions
 }
 
 // Main is the program wired together: tests build one with a temporary
@@ -41,6 +47,7 @@ type Main struct {
 	Server   *server.Server
 	HTTP     *http.Server
 	Listener net.Listener
+	Metrics  *http.Server // the --metrics-addr server, if any
 	served   chan error
 }
 
@@ -66,6 +73,15 @@ func (m *Main) ParseFlags(args []string, demo bool, stderr io.Writer) error {
 	fs.StringVar(&c.Synchronous, "synchronous", c.Synchronous, "SQLite synchronous `mode`: FULL (durable across power loss) or NORMAL")
 	fs.StringVar(&c.LogFormat, "log-format", c.LogFormat, "log `format`: text or json")
 	fs.DurationVar(&c.ShutdownTimeout, "shutdown-timeout", c.ShutdownTimeout, "time replies in flight may take to finish on SIGTERM")
+	c.Limits = server.Limits{EntryRate: 2, EntryBurst: 20, ReplyRate: 1, ReplyBurst: 5}
+	fs.StringVar(&c.MetricsAddr, "metrics-addr", "", "serve Prometheus /metrics on this `address` (keep it private)")
+	fs.StringVar(&c.TLSCert, "tls-cert", "", "TLS certificate `file` (PEM); with --tls-key, serve HTTPS")
+	fs.StringVar(&c.TLSKey, "tls-key", "", "TLS private key `file` (PEM)")
+	fs.Float64Var(&c.Limits.EntryRate, "entry-rate", c.Limits.EntryRate, "entries per second per client address (0: no limit)")
+	fs.IntVar(&c.Limits.EntryBurst, "entry-burst", c.Limits.EntryBurst, "entries a client address may make at once")
+	fs.Float64Var(&c.Limits.ReplyRate, "reply-rate", c.Limits.ReplyRate, "replies and retries per second per session (0: no limit)")
+	fs.IntVar(&c.Limits.ReplyBurst, "reply-burst", c.Limits.ReplyBurst, "replies and retries a session may send at once")
+	fs.BoolVar(&c.Limits.TrustProxy, "trust-proxy", false, "take client addresses from X-Forwarded-For (only behind a proxy that sets it)")
 	if err := fs.Parse(args); err != nil {
 		return err
 	}
@@ -82,6 +98,13 @@ func (m *Main) ParseFlags(args []string, demo bool, stderr io.Writer) error {
 	if c.LogFormat != "text" && c.LogFormat != "json" {
 		return fmt.Errorf("--log-format must be text or json, not %q", c.LogFormat)
 	}
+	if (c.TLSCert == "") != (c.TLSKey == "") {
+		return errors.New("--tls-cert and --tls-key go together: give both or neither")
+	}
+	if c.Limits.EntryRate < 0 || c.Limits.ReplyRate < 0 || c.Limits.EntryBurst < 1 || c.Limits.ReplyBurst < 1 {
+		return errors.New("--entry-rate and --reply-rate must not be negative, --entry-burst and --reply-burst at least 1")
+	}
+	c.SyntheticKey = os.Getenv("TRIALOGUE_SYNTHETIC_KEY")
 	m.Config = c
 	return nil
 }
@@ -122,6 +145,11 @@ func (m *Main) Run(ctx context.Context) error {
 	if err != nil {
 		return err
 	}
+	if m.Config.TLSCert != "" {
+		if _, err := tls.LoadX509KeyPair(m.Config.TLSCert, m.Config.TLSKey); err != nil {
+			return fmt.Errorf("TLS certificate and key: %w", err)
+		}
+	}
 	ln, err := net.Listen("tcp", m.Config.Addr)
 	if err != nil {
 		return fmt.Errorf("listen on %s: %w", m.Config.Addr, err)
@@ -133,13 +161,23 @@ func (m *Main) Run(ctx context.Context) error {
 		return err
 	}
 	m.Store = st
-	m.Server = server.New(st, assets, server.Config{Logger: m.Logger, Demo: m.Config.Demo})
+	m.Server = server.New(st, assets, server.Config{Logger: m.Logger, Demo: m.Config.Demo,
+		Limits: m.Config.Limits, SyntheticKey: m.Config.SyntheticKey})
 	hostSite, frameSite := server.DemoSites(ln.Addr())
 	for _, d := range defs {
 		if m.Config.Demo {
-			// The demo returns respondents to its own stand-in survey page.
-			d.def.Return = hostSite + "/demo/done?rid={{.rid}}&code={{.code}}&arm={{.arm_code}}&study={{.study}}"
-			d.def.ParentOrigin = hostSite
+			// The demo returns respondents to its own stand-in survey page:
+			// it serves a copy of the file whose return address points there,
+			// so that the stored file and its hash still agree.
+			src, err := demoSource(d.src, hostSite)
+			if err == nil {
+				d.def, err = arms.Parse(d.def.ID+" (demo copy)", src)
+			}
+			if err != nil {
+				m.Close()
+				return err
+			}
+			d.src = src
 		}
 		if _, err := m.Server.AddStudy(ctx, d.def, d.src); err != nil {
 			m.Close()
@@ -155,7 +193,19 @@ func (m *Main) Run(ctx context.Context) error {
 		ErrorLog:          slog.NewLogLogger(m.Logger.Handler(), slog.LevelWarn),
 	}
 	m.served = make(chan error, 1)
-	go func() { m.served <- m.HTTP.Serve(ln) }()
+	scheme := "http"
+	if m.Config.TLSCert != "" {
+		scheme = "https"
+		go func() { m.served <- m.HTTP.ServeTLS(ln, m.Config.TLSCert, m.Config.TLSKey) }()
+	} else {
+		go func() { m.served <- m.HTTP.Serve(ln) }()
+	}
+	if m.Config.MetricsAddr != "" {
+		if err := m.serveMetrics(); err != nil {
+			m.Close()
+			return err
+		}
+	}
 	m.Logger.Info("serving", slog.String("addr", ln.Addr().String()), slog.String("db", m.Config.DB), slog.Int("studies", len(defs)))
 	if m.Config.Demo {
 		d := defs[0].def
@@ -170,9 +220,40 @@ func (m *Main) Run(ctx context.Context) error {
 		}
 		fmt.Fprint(m.Stdout, "\n\n")
 	} else {
-		fmt.Fprintf(m.Stdout, "Trialogue serving %d stud(ies) on http://%s\n\n", len(defs), ln.Addr())
+		fmt.Fprintf(m.Stdout, "Trialogue serving %d stud(ies) on %s://%s\n\n", len(defs), scheme, ln.Addr())
 	}
 	fmt.Fprint(m.Stdout, cautions)
+	return nil
+}
+
+var (
+	returnLine = regexp.MustCompile(`(?m)^return:.*$`)
+	parentLine = regexp.MustCompile(`(?m)^parent_origin:.*\n?`)
+)
+
+// demoSource rewrites a study file's return address and parent origin to
+// the demo's stand-in survey page on hostSite.
+func demoSource(src []byte, hostSite string) ([]byte, error) {
+	if !returnLine.Match(src) {
+		return nil, errors.New("demo: the study file has no top-level return: line to point at the stand-in survey page")
+	}
+	src = parentLine.ReplaceAll(src, nil)
+	line := fmt.Sprintf("return: %q\nparent_origin: %q", hostSite+"/demo/done?rid={{.rid}}&code={{.code}}&arm={{.arm_code}}&study={{.study}}", hostSite)
+	return returnLine.ReplaceAllLiteral(src, []byte(line)), nil
+}
+
+// serveMetrics serves /metrics on its own address, for researchers only.
+func (m *Main) serveMetrics() error {
+	ln, err := net.Listen("tcp", m.Config.MetricsAddr)
+	if err != nil {
+		return fmt.Errorf("listen on %s for metrics: %w", m.Config.MetricsAddr, err)
+	}
+	mux := http.NewServeMux()
+	mux.Handle("GET /metrics", m.Server.MetricsHandler())
+	m.Metrics = &http.Server{Handler: mux, ReadHeaderTimeout: 10 * time.Second, ReadTimeout: 30 * time.Second,
+		WriteTimeout: 30 * time.Second, ErrorLog: slog.NewLogLogger(m.Logger.Handler(), slog.LevelWarn)}
+	go m.Metrics.Serve(ln)
+	m.Logger.Info("serving metrics", slog.String("addr", ln.Addr().String()))
 	return nil
 }
 
@@ -201,6 +282,9 @@ func (m *Main) Close() error {
 		}
 	} else if m.Listener != nil {
 		m.Listener.Close()
+	}
+	if m.Metrics != nil {
+		m.Metrics.Close()
 	}
 	if m.Store != nil {
 		errs = append(errs, m.Store.Close())
