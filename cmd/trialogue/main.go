@@ -40,6 +40,8 @@ Commands:
   trialogue drift --db PATH --study ID [--runs N]
   trialogue effects --db PATH --study ID --outcomes FILE.csv --id COLUMN --outcome COLUMN --control ARM[,ARM] [--adjust none|pre|lin] [--out DIR]
   trialogue arms-map --db PATH --study ID [--permutations N] [--out DIR]
+  trialogue simulate --url URL --study ID --respondents N --concurrency C [--personas FILE] [--persona-endpoint NAME --study-file FILE] [--think-time D] [--report FILE]
+  trialogue backup --db PATH --out FILE
 
 Run "trialogue COMMAND -h" for a command's flags.
 `
@@ -71,6 +73,10 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runEffects(ctx, args[1:], stdout, stderr)
 	case "arms-map":
 		return runArmsMap(ctx, args[1:], stdout, stderr)
+	case "simulate":
+		return runSimulate(ctx, args[1:], stdout, stderr)
+	case "backup":
+		return runBackup(ctx, args[1:], stdout, stderr)
 	case "help", "-h", "--help":
 		fmt.Fprint(stdout, usage())
 		return exitOK
