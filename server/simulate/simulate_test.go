@@ -274,7 +274,9 @@ func TestRunWithPersonaModel(t *testing.T) {
 	if len(pm.bodies) != replies || replies == 0 {
 		t.Fatalf("persona model calls: got %d, want one per stored reply (%d)", len(pm.bodies), replies)
 	}
-	var req struct{ Messages []struct{ Role, Content string } }
+	var req struct {
+		Messages []struct{ Role, Content string }
+	}
 	json.Unmarshal([]byte(pm.bodies[len(pm.bodies)-1]), &req)
 	sys := req.Messages[0].Content
 	if req.Messages[0].Role != "system" || !strings.Contains(sys, "lean: left") || !strings.Contains(sys, "age: 71") || !strings.Contains(sys, "retired ferry pilot") {
