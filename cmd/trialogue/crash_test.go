@@ -5,6 +5,7 @@ import (
 	"bytes"
 	"context"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"net/http"
@@ -211,7 +212,7 @@ func TestCrashMidChat(t *testing.T) {
 		t.Fatal(err)
 	}
 	db := filepath.Join(dir, "crash.db")
-	args := []string{"serve", "--study", studyPath, "--db", db, "--addr", "127.0.0.1:0"}
+	args := []string{"serve", "--study", studyPath, "--db", db, "--addr", "127.0.0.1:0", "--entry-rate", "0", "--reply-rate", "0"}
 	p := startProc(t, bin, args...)
 
 	const n = 200
@@ -476,4 +477,203 @@ func checkCrashDatabase(t *testing.T, db, studyPath string, resp []*crashRespond
 			t.Errorf("%s: not finished", r.rid)
 		}
 	}
+}
+
+// shutdownStudy streams each answer slowly, so that SIGTERM arrives while
+// one is in flight.
+const shutdownStudy = `id: shutdown-ferry
+title: Harrow Bay ferry
+covariates:
+  - {name: lean, type: choice, values: [left, right], required: true}
+strata: [lean]
+allocation: {blocks: [1], arms: {talk: 1}}
+endpoints:
+  bot: {kind: scripted, chunks: 8, delay: 2s}
+arms:
+  talk:
+    kind: chat
+    endpoint: bot
+    replies: {min: 1, max: 2}
+    system: Talk about the ferry.
+    script: ["The ferry leaves at seven every morning from the old pier.", "Thank you."]
+return: "https://survey.example.org/back?rid={{.rid}}&code={{.code}}"
+`
+
+var metricsLine = regexp.MustCompile(`msg="serving metrics" addr=(127\.0\.0\.1:\d+)`)
+
+// TestGracefulShutdown: on SIGTERM the real binary stops taking entries at
+// once, lets the reply in flight finish and commit, and exits 0. Before
+// that, it checks the server's limits and its separate metrics address.
+func TestGracefulShutdown(t *testing.T) {
+	if testing.Short() {
+		t.Skip("builds the binary")
+	}
+	bin := trialogueBinary(t)
+	dir := t.TempDir()
+	studyPath := filepath.Join(dir, "shutdown.yaml")
+	if err := os.WriteFile(studyPath, []byte(shutdownStudy), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	db := filepath.Join(dir, "shutdown.db")
+	p := startProc(t, bin, "serve", "--study", studyPath, "--db", db, "--addr", "127.0.0.1:0",
+		"--metrics-addr", "127.0.0.1:0", "--shutdown-timeout", "20s")
+	hc := &http.Client{Transport: &http.Transport{}, CheckRedirect: func(*http.Request, []*http.Request) error { return http.ErrUseLastResponse }}
+	defer hc.CloseIdleConnections()
+	enter := func(rid string) (string, error) {
+		res, err := hc.Get(p.base + "/s/shutdown-ferry?rid=" + rid + "&lean=left")
+		if err != nil {
+			return "", err
+		}
+		res.Body.Close()
+		if res.StatusCode != http.StatusSeeOther {
+			return "", fmt.Errorf("entry: got %d, want 303", res.StatusCode)
+		}
+		return strings.TrimPrefix(res.Header.Get("Location"), "/c/"), nil
+	}
+	token, err := enter("G-1")
+	if err != nil {
+		t.Fatal(err)
+	}
+
+	t.Run("ErrHeaderTooLarge", func(t *testing.T) {
+		req, _ := http.NewRequest("GET", p.base+"/healthz", nil)
+		req.Header.Set("X-Padding", strings.Repeat("a", 64<<10))
+		res, err := hc.Do(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		res.Body.Close()
+		// RFC 6585 section 5: 431 Request Header Fields Too Large.
+		if res.StatusCode != http.StatusRequestHeaderFieldsTooLarge {
+			t.Fatalf("got %d, want 431", res.StatusCode)
+		}
+	})
+	t.Run("OKMetricsOnTheirOwnAddress", func(t *testing.T) {
+		m := metricsLine.FindStringSubmatch(p.stderr.String())
+		if m == nil {
+			t.Fatalf("no metrics address in the log:\n%s", p.stderr.String())
+		}
+		res, err := hc.Get("http://" + m[1] + "/metrics")
+		if err != nil {
+			t.Fatal(err)
+		}
+		body, _ := io.ReadAll(res.Body)
+		res.Body.Close()
+		if res.StatusCode != 200 || !strings.Contains(string(body), `trialogue_assignments_total{arm="talk",study="shutdown-ferry",synthetic="false"} 1`) {
+			t.Fatalf("metrics: got %d\n%.2000s", res.StatusCode, body)
+		}
+		res, err = hc.Get(p.base + "/metrics")
+		if err != nil {
+			t.Fatal(err)
+		}
+		res.Body.Close()
+		if res.StatusCode != http.StatusNotFound {
+			t.Fatalf("/metrics on the respondents' address: got %d, want 404", res.StatusCode)
+		}
+	})
+
+	// a reply streams; SIGTERM arrives after its first chunk
+	req, _ := http.NewRequest("POST", p.base+"/c/"+token+"/reply", strings.NewReader(`{"text":"When does the ferry leave?","client_id":"g1"}`))
+	req.Header.Set("Accept", "text/event-stream")
+	res, err := hc.Do(req)
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer res.Body.Close()
+	sc := bufio.NewScanner(res.Body)
+	var events []string
+	for sc.Scan() {
+		if name, ok := strings.CutPrefix(sc.Text(), "event: "); ok {
+			events = append(events, name)
+			if name == "chunk" {
+				break
+			}
+		}
+	}
+	if err := p.cmd.Process.Signal(syscall.SIGTERM); err != nil {
+		t.Fatal(err)
+	}
+	// New entries are refused while the reply is still streaming.
+	refused := make(chan error, 1)
+	go func() {
+		for i := range 100000 {
+			if _, err := enter(fmt.Sprintf("G-late-%d", i)); errors.Is(err, syscall.ECONNREFUSED) {
+				refused <- err
+				return
+			}
+		}
+	}()
+	var refusal error
+	select {
+	case refusal = <-refused:
+	case <-p.exited:
+		t.Fatalf("the process exited before refusing entries")
+	}
+	for sc.Scan() {
+		if name, ok := strings.CutPrefix(sc.Text(), "event: "); ok {
+			events = append(events, name)
+		}
+	}
+	if events[len(events)-1] != "done" {
+		t.Fatalf("the reply in flight: got events %v, want it to finish with done", events)
+	}
+	t.Logf("entry after SIGTERM refused with: %v", refusal)
+	<-p.exited
+	if p.err != nil {
+		t.Fatalf("exit after SIGTERM: got %v, want status 0\n%s", p.err, p.stderr.String())
+	}
+	st, err := store.Open(context.Background(), db, store.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer st.Close()
+	sessions, err := st.Sessions(context.Background(), "shutdown-ferry")
+	if err != nil || len(sessions) < 1 {
+		t.Fatalf("sessions: %v %v", sessions, err)
+	}
+	turns, err := st.Turns(context.Background(), sessions[0].ID)
+	if err != nil || len(turns) != 2 || turns[1].Text != "The ferry leaves at seven every morning from the old pier." {
+		t.Fatalf("after shutdown: got %d turns (%v), want the reply and its committed answer", len(turns), err)
+	}
+}
+
+// TestBackupCommand copies the database of a running server.
+func TestBackupCommand(t *testing.T) {
+	dir := t.TempDir()
+	db := filepath.Join(dir, "live.db")
+	m, base := startMain(t, db)
+	defer m.Close()
+	enterChat(t, base)
+	out := filepath.Join(dir, "copy.db")
+	t.Run("OK", func(t *testing.T) {
+		var o, e bytes.Buffer
+		if code := run(context.Background(), []string{"backup", "--db", db, "--out", out}, &o, &e); code != exitOK {
+			t.Fatalf("got exit %d, want 0: %s", code, e.String())
+		}
+		if !strings.Contains(o.String(), "integrity check ok") {
+			t.Fatalf("got %q", o.String())
+		}
+		st, err := store.Open(context.Background(), out, store.Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer st.Close()
+		a, _ := m.Store.Sessions(context.Background(), "quillhaven-cable-car")
+		b, err := st.Sessions(context.Background(), "quillhaven-cable-car")
+		if err != nil || len(b) != len(a) || len(a) == 0 {
+			t.Fatalf("sessions in the copy: got %d (%v), want %d", len(b), err, len(a))
+		}
+	})
+	t.Run("ErrOutputExists", func(t *testing.T) {
+		var o, e bytes.Buffer
+		if code := run(context.Background(), []string{"backup", "--db", db, "--out", out}, &o, &e); code != exitFail || !strings.Contains(e.String(), "already exists") {
+			t.Fatalf("got exit %d %q, want 1 saying the file exists", code, e.String())
+		}
+	})
+	t.Run("ErrNoOut", func(t *testing.T) {
+		var o, e bytes.Buffer
+		if code := run(context.Background(), []string{"backup", "--db", db}, &o, &e); code != exitUsage {
+			t.Fatalf("got exit %d, want 2", code)
+		}
+	})
 }
