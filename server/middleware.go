@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"log/slog"
 	"net/http"
+	"strings"
 	"time"
 
 	"github.com/go-chi/chi/v5"
@@ -37,7 +38,17 @@ func csp(frameAncestors string) string {
 // phone's connection. Event streams are not among its types, so each
 // Server-Sent Event still leaves at once.
 func compress(next http.Handler) http.Handler {
-	return middleware.Compress(5)(next)
+	c := middleware.Compress(5)(next)
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		// chi takes a compressor (about 1 MB) from its pool for every request
+		// before it knows the type; a reply stream, never compressed, would
+		// hold one for all its seconds: 1,000 streams held over 1 GB.
+		if strings.Contains(r.Header.Get("Accept"), "text/event-stream") {
+			next.ServeHTTP(w, r)
+			return
+		}
+		c.ServeHTTP(w, r)
+	})
 }
 
 // logRequests logs each request by its route pattern, so tokens and
