@@ -6,43 +6,7 @@ import (
 	"slices"
 	"strings"
 	"testing"
-
-	"trialogue/arms"
-	"trialogue/arms/assign"
 )
-
-// TestRedrawMatchesPlan holds the allocation-free re-draw to assign.Plan,
-// the study's own scheme, for several seeds, strata and lengths.
-func TestRedrawMatchesPlan(t *testing.T) {
-	demo, _, err := arms.ParseFile("../../testdata/demo-study.yaml")
-	if err != nil {
-		t.Fatal(err)
-	}
-	// Blocks of 5 and 10 (fixture), 6 and 12 (demo), and odd sizes that
-	// take the general path.
-	odd := fixtureStudy(t, false).Scheme()
-	odd.Blocks = []int{15, 20, 35}
-	for _, sc := range []assign.Scheme{fixtureStudy(t, false).Scheme(), demo.Scheme(), odd} {
-		for d := range 4 {
-			seed := drawSeed(42, d)
-			plan, err := assign.NewPlan(seed, sc)
-			if err != nil {
-				t.Fatal(err)
-			}
-			for _, key := range []string{"lean=left", "lean=right", "all"} {
-				n := 7 + 131*d
-				want := plan.Sequence(key, n)
-				got := make([]int32, n)
-				Redraw(seed, sc, key, got, nil)
-				for i := range n {
-					if sc.Arms[got[i]].Arm != want[i].Arm {
-						t.Fatalf("blocks %v seed %d stratum %s slot %d: got %s, want %s (assign.Plan)", sc.Blocks, d, key, i, sc.Arms[got[i]].Arm, want[i].Arm)
-					}
-				}
-			}
-		}
-	}
-}
 
 func TestAnalyze(t *testing.T) {
 	st := fixtureStudy(t, false)

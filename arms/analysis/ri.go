@@ -5,8 +5,11 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math"
+	"math/bits"
 	"math/rand/v2"
 	"runtime"
+	"slices"
+	"strings"
 	"sync"
 
 	"gonum.org/v1/gonum/mat"
@@ -14,411 +17,483 @@ import (
 	"trialogue/arms/assign"
 )
 
-// Redraw fills dst with the arm indexes (into the scheme's arms, in
-// declared order) of the first len(dst) slots of a stratum's allocation
-// sequence under seed: the sequence assign.Plan gives, computed without its
-// cache so that thousands of re-draws cost no allocation. It follows steps 1
-// to 5 of the assign package documentation with assign's own StratumKey and
-// Draw; TestRedrawMatchesPlan holds it to assign.Plan. list is scratch
-// space for one block; Redraw returns it, grown, for the next call.
-func Redraw(seed []byte, sc assign.Scheme, stratum string, dst []int32, list []int32) []int32 {
-	src := rand.NewChaCha8(assign.StratumKey(seed, stratum))
+// dealer deals the permuted blocks of a study's allocation scheme from a
+// fast seeded generator (math/rand/v2's PCG). Randomization inference needs
+// re-draws of the study's scheme (its strata, its block sizes, each block
+// an exact permutation of the ratio, with fresh seeds) but not the audited
+// ChaCha8 stream of package assign that fixes the study's own sequence:
+// any uniform draws give re-draws from the same distribution. A dealer
+// allocates nothing per block, and one 64-bit output shuffles a whole
+// block of up to 20 slots.
+type dealer struct {
+	src    rand.PCG
+	blocks []dealBlock
+}
+
+// dealBlock is one block size: the ratio list (each arm, in declared
+// order, repeated its share of the block), where each arm's run of the
+// list ends, and the draws of the shuffle grouped into batches that one
+// 64-bit output serves.
+type dealBlock struct {
+	ratio   []int32
+	ends    []int // ends[a]: one past arm a's last entry in ratio
+	batches []batch
+}
+
+// batch covers the shuffle's steps i = lo … hi, each drawing j uniform in
+// [0, i]; prod is the product of those ranges (below 2^64) and reject =
+// 2^64 mod prod, the rejection threshold.
+type batch struct {
+	lo, hi int
+	prod   uint64
+	reject uint64
+}
+
+// newDealer prepares a dealer for the scheme, which must be valid.
+func newDealer(sc assign.Scheme) *dealer {
 	sum := 0
 	for _, r := range sc.Arms {
 		sum += r.Weight
 	}
-	for filled := 0; filled < len(dst); {
-		size := sc.Blocks[drawSlot(src, len(sc.Blocks))]
-		list = list[:0]
+	d := &dealer{}
+	for _, size := range sc.Blocks {
+		var b dealBlock
 		for a, r := range sc.Arms {
 			for range r.Weight * size / sum {
-				list = append(list, int32(a))
+				b.ratio = append(b.ratio, int32(a))
 			}
+			b.ends = append(b.ends, len(b.ratio))
 		}
-		for i := size - 1; i >= 1; i-- {
-			j := drawSlot(src, i+1)
-			list[i], list[j] = list[j], list[i]
+		for i := 1; i < size; {
+			bt := batch{lo: i, prod: 1}
+			for ; i < size; i++ {
+				hi, lo := bits.Mul64(bt.prod, uint64(i+1))
+				if hi != 0 {
+					break
+				}
+				bt.prod = lo
+			}
+			bt.hi = i - 1
+			bt.reject = -bt.prod % bt.prod
+			b.batches = append(b.batches, bt)
 		}
-		filled += copy(dst[filled:], list)
+		d.blocks = append(d.blocks, b)
 	}
-	return list
+	return d
 }
 
-// drawSlot is assign.Draw (step 3: rejection sampling, then x mod n) with the
-// divisions by the small sizes that blocks use written as constants, which
-// the compiler turns into multiplications: a re-draw of 100,000 slots is
-// otherwise dominated by 64-bit divisions. Larger n goes to assign.Draw.
-func drawSlot(src *rand.ChaCha8, n int) int {
-	switch n {
-	case 1:
-		src.Uint64()
-		return 0
-	case 2:
-		return int(src.Uint64() % 2) // 2^64 mod 2 = 0: no rejection
-	case 3:
-		return int(modConst3(src))
-	case 4:
-		return int(src.Uint64() % 4)
-	case 5:
-		return int(modConst5(src))
-	case 6:
-		return int(modConst6(src))
-	case 8:
-		return int(src.Uint64() % 8)
-	case 10:
-		return int(modConst10(src))
-	case 12:
-		return int(modConst12(src))
-	}
-	return assign.Draw(src, n)
-}
+// seed restarts the dealer's stream.
+func (d *dealer) seed(seed1, seed2 uint64) { d.src.Seed(seed1, seed2) }
 
-// The limits are 2^64 - 1 - (2^64 mod n): values above them are rejected.
-func modConst3(src *rand.ChaCha8) uint64 {
-	const limit = ^uint64(0) - (^uint64(0)%3+1)%3
-	for {
-		if x := src.Uint64(); x <= limit {
-			return x % 3
+// uniform returns an integer uniform in [0, n) for 1 ≤ n by Lemire's
+// multiply-and-reject method: exact, and without a division unless the
+// first product falls in the (rare) band that may need rejecting.
+func (d *dealer) uniform(n uint64) uint64 {
+	hi, lo := bits.Mul64(d.src.Uint64(), n)
+	if lo < n {
+		thresh := -n % n
+		for lo < thresh {
+			hi, lo = bits.Mul64(d.src.Uint64(), n)
 		}
 	}
+	return hi
 }
 
-func modConst5(src *rand.ChaCha8) uint64 {
-	const limit = ^uint64(0) - (^uint64(0)%5+1)%5
-	for {
-		if x := src.Uint64(); x <= limit {
-			return x % 5
+// next deals the next block into dst (which must hold the largest block)
+// and returns the index of its size among the scheme's: the size drawn
+// uniformly, then the block's ratio list in a uniformly random order, by
+// the inside-out Fisher–Yates shuffle, so every block is an exact
+// permutation of the ratio.
+func (d *dealer) next(dst []int32) int {
+	bi := 0
+	if len(d.blocks) > 1 {
+		bi = int(d.uniform(uint64(len(d.blocks))))
+	}
+	b := &d.blocks[bi]
+	ratio := b.ratio
+	dst = dst[:len(ratio)]
+	dst[0] = ratio[0]
+	for _, bt := range b.batches {
+		// Successive high words of x·(lo+1), then of the low word times the
+		// next range, … are the mixed-radix digits of ⌊x·prod / 2^64⌋, and
+		// the last low word is x·prod mod 2^64. Rejecting x when that falls
+		// below 2^64 mod prod makes ⌊x·prod / 2^64⌋ uniform on [0, prod)
+		// (Lemire's method), so the digits are independent uniform draws.
+		x := d.src.Uint64()
+		for x*bt.prod < bt.reject {
+			x = d.src.Uint64()
+		}
+		for i := bt.lo; i <= bt.hi; i++ {
+			var j uint64
+			j, x = bits.Mul64(x, uint64(i+1))
+			dst[i] = dst[j]
+			dst[j] = ratio[i]
 		}
 	}
+	return bi
 }
 
-func modConst6(src *rand.ChaCha8) uint64 {
-	const limit = ^uint64(0) - (^uint64(0)%6+1)%6
-	for {
-		if x := src.Uint64(); x <= limit {
-			return x % 6
-		}
+// maxBlock is the largest block size of the dealer's scheme.
+func (d *dealer) maxBlock() int {
+	m := 0
+	for _, b := range d.blocks {
+		m = max(m, len(b.ratio))
 	}
-}
-
-func modConst10(src *rand.ChaCha8) uint64 {
-	const limit = ^uint64(0) - (^uint64(0)%10+1)%10
-	for {
-		if x := src.Uint64(); x <= limit {
-			return x % 10
-		}
-	}
-}
-
-func modConst12(src *rand.ChaCha8) uint64 {
-	const limit = ^uint64(0) - (^uint64(0)%12+1)%12
-	for {
-		if x := src.Uint64(); x <= limit {
-			return x % 12
-		}
-	}
+	return m
 }
 
 // drawSeed derives the seed of re-draw d from the master seed: fresh seeds,
-// unrelated to the study's own, and reproducible from the master seed.
-func drawSeed(master uint64, d int) []byte {
-	var b [len("trialogue/ri/v1") + 16]byte
-	n := copy(b[:], "trialogue/ri/v1")
+// unrelated to the study's own, and reproducible from the master seed
+// whatever the number of workers.
+func drawSeed(master uint64, d int) (uint64, uint64) {
+	var b [len("trialogue/ri/v2") + 16]byte
+	n := copy(b[:], "trialogue/ri/v2")
 	binary.BigEndian.PutUint64(b[n:], master)
 	binary.BigEndian.PutUint64(b[n+8:], uint64(d))
 	h := sha256.Sum256(b[:])
-	return h[:]
+	return binary.BigEndian.Uint64(h[:8]), binary.BigEndian.Uint64(h[8:16])
 }
 
-// suffStats turns a unit's data into the vector whose sums per group
-// determine the estimate, and the estimate from those sums.
-type suffStats struct {
-	dim  int
-	z    []float64 // units × dim
-	tot  []float64 // sums over every unit
-	k    int       // treatment arms
-	est  func(sums [][]float64) ([]float64, error)
-	work []float64
+// riStratum is one stratum of the re-draws: its analysed respondents'
+// values in the order of the stratum's slots, so that a re-draw deals the
+// stratum's arms into slot order and then adds each slot's values to its
+// arm's sums in one sequential pass.
+type riStratum struct {
+	key  string
+	need int       // slots to deal: one past the last analysed respondent's
+	v    []float64 // need × dv values; zeros where no one is analysed
+	// delta lists the slots below need that do not hold exactly one
+	// analysed respondent, with the number they hold minus one: a slot's
+	// arm gets one count per slot dealt, corrected by these.
+	delta []slotDelta
 }
 
-// newSuffStats prepares the per-unit vectors. For none and pre, the
-// estimate comes from a partitioned regression: with W the intercept and
+// slotDelta corrects the count of the arm dealt to a slot.
+type slotDelta struct {
+	slot int32
+	d    float64
+}
+
+// riStat is a statistic computed from the count and the sums of a short
+// vector of values per respondent, per stratum and group: cell c holds the
+// count in c[0] and the sums of the dv values in c[1:].
+type riStat struct {
+	dv   int
+	v    func(i int, dst []float64) // respondent i's values
+	est  func(cells [][]float64) ([]float64, error)
+	same bool // the statistic is the reported estimate (checked on the observed data)
+}
+
+// newRIStat prepares the statistic. For none and pre it is the reported
+// estimate itself, from a partitioned regression: with W the intercept and
 // additive columns (fixed under re-draws) and D the arm indicators,
-// τ = (D'D − D'W (W'W)⁻¹ W'D)⁻¹ (D'y − D'W (W'W)⁻¹ W'y), which needs only
-// the per-arm sums of W's rows and of y. For Lin, each group's own
-// regression on the covariates centered at the sample mean gives its
-// adjusted mean; τ_k is arm k's minus the control's, which needs per-group
-// sums of x, y, xx' and xy.
-func (s *sample) newSuffStats() (*suffStats, error) {
+// τ = (D'D − D'W (W'W)⁻¹ W'D)⁻¹ (D'y − D'W (W'W)⁻¹ W'y), which needs per
+// group only the counts per stratum (the stratum indicators' sums) and the
+// sums of pre and y. For Lin, whose estimate needs per group the sums of
+// the covariates' squares and products, it is the difference between each
+// treatment arm's and the control's mean residual from the regression of
+// the outcome on the covariates and stratum indicators alone, fitted once
+// (Rosenbaum's covariance-adjusted randomization test): under the sharp
+// null the outcomes, hence the residuals, do not depend on the assignment,
+// so any statistic gives a valid test of that null.
+func (s *sample) newRIStat() (*riStat, error) {
 	adj, _ := s.adjusters()
 	n := len(s.y)
 	k := s.groups - 1
-	ss := &suffStats{k: k}
-	if s.spec.Adjust != AdjustLin {
-		q := 1 + len(adj)
-		ss.dim = q + 1
-		ss.z = make([]float64, n*ss.dim)
-		wtw := mat.NewSymDense(q, nil)
-		wty := make([]float64, q)
-		w := make([]float64, q)
+	nst := len(s.strata)
+	if s.spec.Adjust == AdjustLin {
+		x := mat.NewDense(n, 1+len(adj), nil)
 		for i := range n {
-			w[0] = 1
+			row := x.RawRowView(i)
+			row[0] = 1
 			for j, c := range adj {
-				w[1+j] = c[i]
+				row[1+j] = c[i]
 			}
-			z := ss.z[i*ss.dim : (i+1)*ss.dim]
-			copy(z, w)
-			z[q] = s.y[i]
-			for a := range q {
-				wty[a] += w[a] * s.y[i]
-				for b := a; b < q; b++ {
-					wtw.SetSym(a, b, wtw.At(a, b)+w[a]*w[b])
+		}
+		var qr mat.QR
+		qr.Factorize(x)
+		var b mat.VecDense
+		if err := qr.SolveVecTo(&b, false, mat.NewVecDense(n, s.y)); err != nil {
+			return nil, fmt.Errorf("randomization inference: residualize the outcome: %w", err)
+		}
+		var fitted mat.VecDense
+		fitted.MulVec(x, &b)
+		resid := make([]float64, n)
+		for i := range resid {
+			resid[i] = s.y[i] - fitted.AtVec(i)
+		}
+		return &riStat{
+			dv: 1,
+			v:  func(i int, dst []float64) { dst[0] = resid[i] },
+			est: func(cells [][]float64) ([]float64, error) {
+				var cnt, sum [2]float64
+				tau := make([]float64, k)
+				for g := range k + 1 {
+					cnt[0], sum[0] = 0, 0
+					for st := range nst {
+						c := cells[st*(k+1)+g]
+						cnt[0] += c[0]
+						sum[0] += c[1]
+					}
+					if cnt[0] == 0 {
+						return nil, fmt.Errorf("a group has no respondents")
+					}
+					if g == 0 {
+						cnt[1], sum[1] = cnt[0], sum[0]
+						continue
+					}
+					tau[g-1] = sum[0]/cnt[0] - sum[1]/cnt[1]
 				}
-			}
-		}
-		var ch mat.Cholesky
-		if !ch.Factorize(wtw) {
-			return nil, fmt.Errorf("randomization inference: the adjustment columns are collinear")
-		}
-		// A = (W'W)⁻¹ W'y, reused by every draw.
-		var wa mat.VecDense
-		if err := ch.SolveVecTo(&wa, mat.NewVecDense(q, wty)); err != nil {
-			return nil, fmt.Errorf("randomization inference: %w", err)
-		}
-		ss.est = func(sums [][]float64) ([]float64, error) {
-			// sums[g] for treatment groups g = 1..k, each (w sums, y sum).
-			dw := mat.NewDense(k, q, nil)
-			lhs := mat.NewDense(k, k, nil)
-			rhs := mat.NewVecDense(k, nil)
-			for g := 1; g <= k; g++ {
-				dw.SetRow(g-1, sums[g][:q])
-				lhs.Set(g-1, g-1, sums[g][0]) // the count, from the intercept column
-				rhs.SetVec(g-1, sums[g][q]-mat.Dot(dw.RowView(g-1), &wa))
-			}
-			var sol, prod mat.Dense
-			if err := ch.SolveTo(&sol, dw.T()); err != nil {
-				return nil, err
-			}
-			prod.Mul(dw, &sol)
-			lhs.Sub(lhs, &prod)
-			var tau mat.VecDense
-			if err := tau.SolveVec(lhs, rhs); err != nil {
-				return nil, err
-			}
-			return tau.RawVector().Data, nil
-		}
-		return ss, ss.total()
+				return tau, nil
+			},
+		}, nil
 	}
-	p := len(adj)
-	cent := make([][]float64, p)
-	for j, c := range adj {
-		m := accurateMean(c)
-		cent[j] = make([]float64, n)
-		for i, v := range c {
-			cent[j][i] = v - m
+	// W: intercept, [pre], stratum indicators; the stratum indicator of
+	// stratum st is column col[st] of W, or none (-1) for the first present
+	// stratum and in an unstratified analysis.
+	hasPre := s.spec.Adjust == AdjustPre
+	q := 1 + len(adj)
+	col := make([]int, nst)
+	for st := range col {
+		col[st] = -1
+	}
+	if s.nStrata > 1 {
+		present := make([]bool, nst)
+		for _, st := range s.stratum {
+			present[st] = true
+		}
+		next := 1
+		if hasPre {
+			next = 2
+		}
+		first := true
+		for st, ok := range present {
+			if !ok {
+				continue
+			}
+			if first {
+				first = false
+				continue
+			}
+			col[st] = next
+			next++
+		}
+		if next != q {
+			return nil, fmt.Errorf("randomization inference: %d stratum columns, want %d", next, q)
 		}
 	}
-	// Layout: count, x (p), y, xx' upper triangle (p(p+1)/2), xy (p).
-	tri := p * (p + 1) / 2
-	ss.dim = 1 + p + 1 + tri + p
-	ss.z = make([]float64, n*ss.dim)
+	wtw := mat.NewSymDense(q, nil)
+	wty := make([]float64, q)
+	w := make([]float64, q)
 	for i := range n {
-		z := ss.z[i*ss.dim : (i+1)*ss.dim]
-		z[0] = 1
-		y := s.y[i]
-		z[1+p] = y
-		t := 2 + p
-		for a := range p {
-			xa := cent[a][i]
-			z[1+a] = xa
-			for b := a; b < p; b++ {
-				z[t] = xa * cent[b][i]
-				t++
+		w[0] = 1
+		for j, c := range adj {
+			w[1+j] = c[i]
+		}
+		for a := range q {
+			wty[a] += w[a] * s.y[i]
+			for b := a; b < q; b++ {
+				wtw.SetSym(a, b, wtw.At(a, b)+w[a]*w[b])
 			}
-			z[2+p+tri+a] = xa * y
 		}
 	}
-	adjMean := func(sum []float64) (float64, error) {
-		cnt := sum[0]
-		xbar := make([]float64, p)
-		for a := range p {
-			xbar[a] = sum[1+a] / cnt
-		}
-		ybar := sum[1+p] / cnt
-		cxx := mat.NewSymDense(p, nil)
-		cxy := mat.NewVecDense(p, nil)
-		t := 2 + p
-		for a := range p {
-			for b := a; b < p; b++ {
-				cxx.SetSym(a, b, sum[t]-cnt*xbar[a]*xbar[b])
-				t++
-			}
-			cxy.SetVec(a, sum[2+p+tri+a]-cnt*xbar[a]*ybar)
-		}
-		var bvec mat.VecDense
-		var ch mat.Cholesky
-		if !ch.Factorize(cxx) {
-			return 0, fmt.Errorf("covariates are collinear within a group")
-		}
-		if err := ch.SolveVecTo(&bvec, cxy); err != nil {
-			return 0, err
-		}
-		return ybar - mat.Dot(mat.NewVecDense(p, xbar), &bvec), nil
+	var ch mat.Cholesky
+	if !ch.Factorize(wtw) {
+		return nil, fmt.Errorf("randomization inference: the adjustment columns are collinear")
 	}
-	ss.est = func(sums [][]float64) ([]float64, error) {
-		mu0, err := adjMean(sums[0])
-		if err != nil {
+	// A = (W'W)⁻¹ W'y, reused by every draw.
+	var wa mat.VecDense
+	if err := ch.SolveVecTo(&wa, mat.NewVecDense(q, wty)); err != nil {
+		return nil, fmt.Errorf("randomization inference: %w", err)
+	}
+	rs := &riStat{dv: 1, same: true}
+	if hasPre {
+		rs.dv = 2
+		rs.v = func(i int, dst []float64) { dst[0], dst[1] = s.pre[i], s.y[i] }
+	} else {
+		rs.v = func(i int, dst []float64) { dst[0] = s.y[i] }
+	}
+	rs.est = func(cells [][]float64) ([]float64, error) {
+		// Per treatment group: its row of D'W and its entry of D'y.
+		dw := mat.NewDense(k, q, nil)
+		lhs := mat.NewDense(k, k, nil)
+		rhs := mat.NewVecDense(k, nil)
+		for g := 1; g <= k; g++ {
+			row := dw.RawRowView(g - 1)
+			ysum := 0.0
+			for st := range nst {
+				c := cells[st*(k+1)+g]
+				row[0] += c[0]
+				if hasPre {
+					row[1] += c[1]
+				}
+				if col[st] >= 0 {
+					row[col[st]] += c[0]
+				}
+				ysum += c[rs.dv]
+			}
+			lhs.Set(g-1, g-1, row[0])
+			rhs.SetVec(g-1, ysum-mat.Dot(dw.RowView(g-1), &wa))
+		}
+		var sol, prod mat.Dense
+		if err := ch.SolveTo(&sol, dw.T()); err != nil {
 			return nil, err
 		}
-		tau := make([]float64, k)
-		for g := 1; g <= k; g++ {
-			mu, err := adjMean(sums[g])
-			if err != nil {
-				return nil, err
-			}
-			tau[g-1] = mu - mu0
+		prod.Mul(dw, &sol)
+		lhs.Sub(lhs, &prod)
+		var tau mat.VecDense
+		if err := tau.SolveVec(lhs, rhs); err != nil {
+			return nil, err
 		}
-		return tau, nil
+		return tau.RawVector().Data, nil
 	}
-	return ss, ss.total()
-}
-
-func (ss *suffStats) total() error {
-	ss.tot = make([]float64, ss.dim)
-	for i := 0; i < len(ss.z); i += ss.dim {
-		for j, v := range ss.z[i : i+ss.dim] {
-			ss.tot[j] += v
-		}
-	}
-	return nil
-}
-
-// estimate computes τ for a grouping of the units (0 control, 1..k arms).
-// acc is scratch space of (k+1) × dim.
-func (ss *suffStats) estimate(group []int32, acc [][]float64) ([]float64, error) {
-	for g := 1; g <= ss.k; g++ {
-		clear(acc[g])
-	}
-	dim := ss.dim
-	for i, g := range group {
-		if g == 0 {
-			continue
-		}
-		a := acc[g][:dim]
-		z := ss.z[i*dim : i*dim+dim]
-		for j := range a {
-			a[j] += z[j]
-		}
-	}
-	copy(acc[0], ss.tot)
-	for g := 1; g <= ss.k; g++ {
-		for j := range acc[0] {
-			acc[0][j] -= acc[g][j]
-		}
-	}
-	return ss.est(acc)
+	return rs, nil
 }
 
 // randomization returns, for each treatment arm, the randomization-
 // inference p-value of the sharp null of no effect for anyone: the share of
 // re-draws of the study's scheme (same strata, same block sizes, fresh
-// seeds; each respondent keeps their stratum and slot) whose estimate is at
-// least as far from zero as the observed one, counting the observed
-// assignment as one draw: (1 + #{|τ*| ≥ |τ|}) / (1 + N).
+// seeds; each respondent keeps their stratum and slot) whose statistic is
+// at least as far from zero as the observed one, counting the observed
+// assignment as one draw: (1 + #{|τ*| ≥ |τ|}) / (1 + N). The statistic is
+// the reported estimate for none and pre, and the difference in mean
+// covariate-adjusted residuals for Lin (see newRIStat).
 func (s *sample) randomization(d *design, observed []float64) ([]float64, error) {
-	ss, err := s.newSuffStats()
+	rs, err := s.newRIStat()
 	if err != nil {
 		return nil, err
 	}
 	sc := d.study.Scheme()
-	armGroup := make([]int32, len(sc.Arms))
+	k := s.groups - 1
+	nst := len(s.strata)
+	armGroup := make([]int, len(sc.Arms))
 	for a, r := range sc.Arms {
-		armGroup[a] = int32(d.armGroup[r.Arm])
+		armGroup[a] = d.armGroup[r.Arm]
 	}
-	// Units by stratum, with the length of sequence each stratum needs.
-	type stratumUnits struct {
-		key   string
-		idx   []int // sample index
-		slots []int
-		need  int
-	}
-	var strata []*stratumUnits
-	byKey := map[string]*stratumUnits{}
+	// The analysed respondents of each stratum, in slot order.
+	dz := 1 + rs.dv
+	strata := make([]*riStratum, nst)
+	var counts [][]float64 // per stratum, respondents per slot
 	for i, ui := range s.units {
 		u := d.units[ui]
-		st := byKey[u.Stratum]
-		if st == nil {
-			st = &stratumUnits{key: u.Stratum}
-			byKey[u.Stratum] = st
-			strata = append(strata, st)
+		if u.Slot < 0 || u.Slot >= math.MaxInt32 {
+			return nil, fmt.Errorf("randomization inference: session %s has slot %d", u.RID, u.Slot)
 		}
-		st.idx = append(st.idx, i)
-		st.slots = append(st.slots, u.Slot)
-		st.need = max(st.need, u.Slot+1)
-	}
-	k := ss.k
-	newAcc := func() [][]float64 {
-		acc := make([][]float64, k+1)
-		for g := range acc {
-			acc[g] = make([]float64, ss.dim)
+		st := s.stratum[i]
+		if strata[st] == nil {
+			strata[st] = &riStratum{key: s.strata[st]}
 		}
-		return acc
+		strata[st].need = max(strata[st].need, u.Slot+1)
 	}
-	// The observed statistic, through the same code path as the re-draws.
-	obsGroup := make([]int32, len(s.group))
-	for i, g := range s.group {
-		obsGroup[i] = int32(g)
+	counts = make([][]float64, nst)
+	for st, x := range strata {
+		if x != nil {
+			x.v = make([]float64, x.need*rs.dv)
+			counts[st] = make([]float64, x.need)
+		}
 	}
-	obs, err := ss.estimate(obsGroup, newAcc())
+	cells := make([][]float64, nst*(k+1))
+	for c := range cells {
+		cells[c] = make([]float64, dz)
+	}
+	v := make([]float64, rs.dv)
+	for i, ui := range s.units {
+		st, slot := s.stratum[i], d.units[ui].Slot
+		rs.v(i, v)
+		// Two respondents on one slot would share its arm: their values add.
+		counts[st][slot]++
+		for j, x := range v {
+			strata[st].v[slot*rs.dv+j] += x
+		}
+		// The observed assignment's cells.
+		c := cells[st*(k+1)+s.group[i]]
+		c[0]++
+		for j, x := range v {
+			c[1+j] += x
+		}
+	}
+	for st, x := range strata {
+		if x == nil {
+			continue
+		}
+		for slot, c := range counts[st] {
+			if c != 1 {
+				x.delta = append(x.delta, slotDelta{int32(slot), c - 1})
+			}
+		}
+	}
+	obs, err := rs.est(cells)
 	if err != nil {
 		return nil, fmt.Errorf("randomization inference: %w", err)
 	}
-	for j := range obs {
-		if math.Abs(obs[j]-observed[j]) > 1e-8*math.Max(1, math.Abs(observed[j])) {
-			return nil, fmt.Errorf("randomization inference: the statistic %g disagrees with the regression's estimate %g", obs[j], observed[j])
+	if rs.same {
+		for j := range obs {
+			if math.Abs(obs[j]-observed[j]) > 1e-8*math.Max(1, math.Abs(observed[j])) {
+				return nil, fmt.Errorf("randomization inference: the statistic %g disagrees with the regression's estimate %g", obs[j], observed[j])
+			}
 		}
 	}
+	// Strata in key order, so that a re-draw's stream does not depend on
+	// the order of the respondents.
+	var order []int
+	maxNeed := 0
+	for st, x := range strata {
+		if x != nil {
+			order = append(order, st)
+			maxNeed = max(maxNeed, x.need)
+		}
+	}
+	slices.SortFunc(order, func(a, b int) int { return strings.Compare(strata[a].key, strata[b].key) })
 	n := s.spec.Permutations
 	workers := min(runtime.GOMAXPROCS(0), n)
-	counts := make([][]int, workers)
+	hits := make([][]int, workers)
 	var wg sync.WaitGroup
 	for w := range workers {
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
 			cnt := make([]int, k)
-			acc := newAcc()
-			group := make([]int32, len(s.y))
-			maxNeed := 0
-			for _, st := range strata {
-				maxNeed = max(maxNeed, st.need)
+			dl := newDealer(sc)
+			seq := make([]int32, maxNeed+dl.maxBlock())
+			armAcc := make([]float64, len(sc.Arms)*dz)
+			cells := make([][]float64, nst*(k+1))
+			for c := range cells {
+				cells[c] = make([]float64, dz)
 			}
-			seq := make([]int32, maxNeed)
-			var list []int32
 			for draw := w; draw < n; draw += workers {
-				seed := drawSeed(s.spec.Seed, draw)
-				for _, st := range strata {
-					list = Redraw(seed, sc, st.key, seq[:st.need], list)
-					for j, i := range st.idx {
-						group[i] = armGroup[seq[st.slots[j]]]
+				dl.seed(drawSeed(s.spec.Seed, draw))
+				for _, c := range cells {
+					clear(c)
+				}
+				for _, st := range order {
+					x := strata[st]
+					clear(armAcc)
+					dl.deal(seq, x, rs.dv, armAcc)
+					base := st * (k + 1)
+					for a, g := range armGroup {
+						c := cells[base+g]
+						for j := range dz {
+							c[j] += armAcc[a*dz+j]
+						}
 					}
 				}
-				tau, err := ss.estimate(group, acc)
+				tau, err := rs.est(cells)
 				if err != nil {
-					// A re-draw can leave a group without the spread Lin needs;
-					// it then counts as at least as extreme, which is conservative.
+					// A re-draw can leave a group empty or the regression
+					// unsolvable; it then counts as at least as extreme,
+					// which is conservative.
 					for j := range cnt {
 						cnt[j]++
 					}
 					continue
 				}
 				for j, v := range tau {
-					if math.Abs(v) >= math.Abs(obs[j])*(1-1e-12) {
+					if !(math.Abs(v) < math.Abs(obs[j])*(1-1e-12)) {
 						cnt[j]++
 					}
 				}
 			}
-			counts[w] = cnt
+			hits[w] = cnt
 		}()
 	}
 	wg.Wait()
@@ -426,9 +501,116 @@ func (s *sample) randomization(d *design, observed []float64) ([]float64, error)
 	for j := range out {
 		c := 0
 		for w := range workers {
-			c += counts[w][j]
+			c += hits[w][j]
 		}
 		out[j] = float64(1+c) / float64(1+n)
 	}
 	return out, nil
 }
+
+// deal deals blocks over the stratum's first need slots into seq (which
+// must hold need plus the largest block) and adds, per arm a, the count of
+// analysed respondents to acc[a·(1+dv)] and the sums of their dv values to
+// the entries after it.
+func (d *dealer) deal(seq []int32, st *riStratum, dv int, acc []float64) {
+	// Deal whole blocks; the last may run past need.
+	var nblocks [8]int
+	var many []int
+	if len(d.blocks) > len(nblocks) {
+		many = make([]int, len(d.blocks))
+	}
+	filled := 0
+	for filled < st.need {
+		bi := d.next(seq[filled:])
+		filled += len(d.blocks[bi].ratio)
+		if many != nil {
+			many[bi]++
+		} else {
+			nblocks[bi]++
+		}
+	}
+	dz := 1 + dv
+	// Counts: each arm's share of every block dealt, less the slots past
+	// need, corrected by the slots that hold no one or several.
+	for bi, b := range d.blocks {
+		nb := 0
+		if many != nil {
+			nb = many[bi]
+		} else {
+			nb = nblocks[bi]
+		}
+		if nb == 0 {
+			continue
+		}
+		start := 0
+		for a, end := range b.ends {
+			acc[a*dz] += float64(nb * (end - start))
+			start = end
+		}
+	}
+	for _, a := range seq[st.need:filled] {
+		acc[int(a)*dz]--
+	}
+	for _, x := range st.delta {
+		acc[int(seq[x.slot])*dz] += x.d
+	}
+	// Sums: one pass in slot order, alternating two banks of sums so that
+	// consecutive slots of one arm do not wait on each other.
+	arms := len(acc) / dz
+	seq = seq[:st.need]
+	switch dv {
+	case 1:
+		var bank [2][maxFastArms]float64
+		if arms > maxFastArms {
+			break
+		}
+		v := st.v[:len(seq)]
+		i := 0
+		for ; i+1 < len(seq); i += 2 {
+			bank[0][seq[i]&(maxFastArms-1)] += v[i]
+			bank[1][seq[i+1]&(maxFastArms-1)] += v[i+1]
+		}
+		if i < len(seq) {
+			bank[0][seq[i]&(maxFastArms-1)] += v[i]
+		}
+		for a := range arms {
+			acc[a*dz+1] += bank[0][a] + bank[1][a]
+		}
+		return
+	case 2:
+		var bank [2][2 * maxFastArms]float64
+		if arms > maxFastArms {
+			break
+		}
+		v := st.v[:2*len(seq)]
+		i := 0
+		for ; i+1 < len(seq); i += 2 {
+			a, b := 2*(seq[i]&(maxFastArms-1)), 2*(seq[i+1]&(maxFastArms-1))
+			bank[0][a] += v[2*i]
+			bank[0][a+1] += v[2*i+1]
+			bank[1][b] += v[2*i+2]
+			bank[1][b+1] += v[2*i+3]
+		}
+		if i < len(seq) {
+			a := 2 * (seq[i] & (maxFastArms - 1))
+			bank[0][a] += v[2*i]
+			bank[0][a+1] += v[2*i+1]
+		}
+		for a := range arms {
+			acc[a*dz+1] += bank[0][2*a] + bank[1][2*a]
+			acc[a*dz+2] += bank[0][2*a+1] + bank[1][2*a+1]
+		}
+		return
+	}
+	for i, a := range seq {
+		src := st.v[i*dv:][:dv]
+		dst := acc[int(a)*dz+1:][:dv]
+		for j, x := range src {
+			dst[j] += x
+		}
+	}
+}
+
+// maxFastArms bounds the schemes whose sums use the fixed-size banks of
+// deal (a power of two, so that masking an arm index proves it in range).
+const maxFastArms = 16
