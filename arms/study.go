@@ -57,11 +57,17 @@ type Study struct {
 	// Translations override catalogue strings per language, by language
 	// code: for a study offering several languages, what Texts is for Language.
 	Translations map[string]map[string]string `yaml:"translations" json:"translations,omitempty"`
+	// Fielding is how the study is run with people: pilot size, protocol
+	// texts, dropout, closing grace and model prices (see Fielding).
+	Fielding *Fielding `yaml:"fielding" json:"fielding,omitempty"`
 	// Probes are fixed conversations replayed against the arms' endpoints
 	// to detect a change of model behaviour (trialogue drift).
 	Probes []Probe `yaml:"probes" json:"probes,omitempty"`
 	// Drift tunes the drift check; defaults apply where it is absent.
 	Drift *DriftSettings `yaml:"drift" json:"drift,omitempty"`
+	// Flags tunes the transcript flags (trialogue/arms/flags); defaults
+	// apply where it is absent.
+	Flags *FlagSettings `yaml:"flags" json:"flags,omitempty"`
 
 	// ArmOrder is the order in which arms are declared in the file,
 	// recovered from the YAML. It is part of the canonical form: the
@@ -88,6 +94,24 @@ type DriftSettings struct {
 	SimilarityFail *float64 `yaml:"similarity_fail" json:"similarity_fail,omitempty"`
 	KSWarn         *float64 `yaml:"ks_warn" json:"ks_warn,omitempty"`
 	KSFail         *float64 `yaml:"ks_fail" json:"ks_fail,omitempty"`
+}
+
+// FlagSettings tune the transcript flags; see trialogue/arms/flags for
+// their meaning and defaults.
+type FlagSettings struct {
+	// Concede lists the phrases with which the model gives up its side;
+	// when set, it replaces the default phrases.
+	Concede []string `yaml:"concede" json:"concede,omitempty"`
+	// Argue lists the arms in which the model argues an assigned side;
+	// default every chat arm.
+	Argue []string `yaml:"argue" json:"argue,omitempty"`
+	// Reveal lists the covariates the model must not repeat back; default
+	// every covariate.
+	Reveal []string `yaml:"reveal" json:"reveal,omitempty"`
+	// ShortWords: a reply under this many words is short; default 4.
+	ShortWords int `yaml:"short_words" json:"short_words,omitempty"`
+	// TimeLimit: a session longer than this is flagged; default 30m.
+	TimeLimit Duration `yaml:"time_limit" json:"time_limit,omitempty"`
 }
 
 // Scalar is a YAML scalar read as text, so that a probe may write age: 52.

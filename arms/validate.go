@@ -57,10 +57,12 @@ func (v *validator) validate() {
 	v.covariates()
 	v.strata()
 	v.endpoints()
+	v.fielding()
 	v.arms()
 	v.allocation()
 	v.returnURL()
 	v.probes()
+	v.flagSettings()
 	if len(v.probs.List) == 0 {
 		v.trialRender()
 	}
@@ -664,4 +666,50 @@ func (pr Probe) Respondent(s *Study) Respondent {
 		}
 	}
 	return r
+}
+
+// flagSettings checks the flags block: known arms and covariates, phrases
+// that can match, thresholds in range.
+func (v *validator) flagSettings() {
+	f := v.s.Flags
+	if f == nil {
+		return
+	}
+	seen := map[string]bool{}
+	for i, ph := range f.Concede {
+		at := p("flags", "concede", strconv.Itoa(i))
+		n := strings.ToLower(strings.Join(strings.Fields(ph), " "))
+		switch {
+		case CountWords(ph) == 0:
+			v.at(at, "concede phrase %q has no words", ph)
+		case len(ph) > 200:
+			v.at(at, "concede phrases are at most 200 characters")
+		case seen[n]:
+			v.at(at, "concede phrase %q is listed twice", ph)
+		}
+		seen[n] = true
+	}
+	if len(f.Concede) > 200 {
+		v.at(p("flags", "concede"), "at most 200 concede phrases (got %d)", len(f.Concede))
+	}
+	for i, name := range f.Argue {
+		a, ok := v.s.Arms[name]
+		switch {
+		case !ok:
+			v.at(p("flags", "argue", strconv.Itoa(i)), "flags.argue names arm %q, which is not declared under arms", name)
+		case a != nil && !a.NeedsModel():
+			v.at(p("flags", "argue", strconv.Itoa(i)), "flags.argue names arm %q, a fixed text: only model-written arms argue", name)
+		}
+	}
+	for i, name := range f.Reveal {
+		if _, ok := v.s.Covariate(name); !ok {
+			v.at(p("flags", "reveal", strconv.Itoa(i)), "flags.reveal names %q, which is not a declared covariate", name)
+		}
+	}
+	if f.ShortWords < 0 || f.ShortWords > 50 {
+		v.at(p("flags", "short_words"), "short_words must be between 1 and 50 (got %d)", f.ShortWords)
+	}
+	if f.TimeLimit != 0 && (time.Duration(f.TimeLimit) < time.Minute || time.Duration(f.TimeLimit) > 7*24*time.Hour) {
+		v.at(p("flags", "time_limit"), "time_limit must be between 1m and 168h (got %s)", time.Duration(f.TimeLimit))
+	}
 }
