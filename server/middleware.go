@@ -6,7 +6,6 @@ import (
 	"fmt"
 	"log/slog"
 	"net/http"
-	"strings"
 	"time"
 
 	"github.com/go-chi/chi/v5"
@@ -31,24 +30,6 @@ func securityHeaders(next http.Handler) http.Handler {
 func csp(frameAncestors string) string {
 	return "default-src 'self'; script-src 'self'; style-src 'self'; img-src 'self' data:; connect-src 'self'; " +
 		"base-uri 'none'; form-action 'self'; frame-ancestors " + frameAncestors
-}
-
-// compress answers pages, scripts, styles and JSON compressed (gzip or
-// deflate, as the client accepts) to keep the respondent page small on a
-// phone's connection. Event streams are not among its types, so each
-// Server-Sent Event still leaves at once.
-func compress(next http.Handler) http.Handler {
-	c := middleware.Compress(5)(next)
-	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
-		// chi takes a compressor (about 1 MB) from its pool for every request
-		// before it knows the type; a reply stream, never compressed, would
-		// hold one for all its seconds: 1,000 streams held over 1 GB.
-		if strings.Contains(r.Header.Get("Accept"), "text/event-stream") {
-			next.ServeHTTP(w, r)
-			return
-		}
-		c.ServeHTTP(w, r)
-	})
 }
 
 // logRequests logs each request by its route pattern, so tokens and

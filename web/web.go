@@ -6,6 +6,7 @@ package web
 
 import (
 	"bytes"
+	"compress/gzip"
 	"crypto/sha256"
 	"embed"
 	"encoding/hex"
@@ -18,6 +19,7 @@ import (
 	"net/http"
 	"path"
 	"sort"
+	"strconv"
 	"strings"
 )
 
@@ -34,6 +36,7 @@ type Assets struct {
 
 type asset struct {
 	body  []byte
+	gz    []byte // the body gzipped once at start
 	ctype string
 }
 
@@ -53,7 +56,18 @@ func Load() (*Assets, error) {
 		name := path.Base(p)
 		ext := path.Ext(name)
 		hashed := strings.TrimSuffix(name, ext) + "." + hex.EncodeToString(sum[:5]) + ext
-		a.static[hashed] = asset{body: b, ctype: mime.TypeByExtension(ext)}
+		var gz bytes.Buffer
+		zw, err := gzip.NewWriterLevel(&gz, gzip.BestCompression)
+		if err != nil {
+			return err
+		}
+		if _, err := zw.Write(b); err != nil {
+			return err
+		}
+		if err := zw.Close(); err != nil {
+			return err
+		}
+		a.static[hashed] = asset{body: b, gz: gz.Bytes(), ctype: mime.TypeByExtension(ext)}
 		a.urls[name] = "/static/" + hashed
 		return nil
 	})
@@ -85,10 +99,15 @@ func Load() (*Assets, error) {
 	}
 	for _, p := range pages {
 		name := strings.TrimSuffix(path.Base(p), ".html")
-		if name == "layout" {
+		if name == "layout" || name == "console_layout" {
 			continue
 		}
-		t, err := template.New("layout.html").Funcs(funcs).ParseFS(files, "templates/layout.html", p)
+		// The researcher console's pages have a layout of their own.
+		layout := "layout.html"
+		if strings.HasPrefix(name, "console") {
+			layout = "console_layout.html"
+		}
+		t, err := template.New(layout).Funcs(funcs).ParseFS(files, "templates/"+layout, p)
 		if err != nil {
 			return nil, fmt.Errorf("load template %s: %w", name, err)
 		}
@@ -192,7 +211,15 @@ func (a *Assets) ServeStatic(w http.ResponseWriter, r *http.Request, name string
 		http.NotFound(w, r)
 		return
 	}
-	w.Header().Set("Content-Type", f.ctype)
-	w.Header().Set("Cache-Control", "public, max-age=31536000, immutable")
-	w.Write(f.body)
+	h := w.Header()
+	h.Set("Content-Type", f.ctype)
+	h.Set("Cache-Control", "public, max-age=31536000, immutable")
+	h.Add("Vary", "Accept-Encoding")
+	body := f.body
+	if strings.Contains(r.Header.Get("Accept-Encoding"), "gzip") && len(f.gz) < len(f.body) {
+		h.Set("Content-Encoding", "gzip")
+		body = f.gz
+	}
+	h.Set("Content-Length", strconv.Itoa(len(body)))
+	w.Write(body)
 }
