@@ -264,80 +264,154 @@ func Folds(n, k int, seed uint64) []int {
 }
 
 // classifier evaluates nearest-centroid cross-validation quickly for many
-// labelings of the same documents and folds.
+// labelings of the same documents and folds. It keeps the rows in one
+// compressed array, fold after fold (in document order within a fold), so
+// that a labeling's passes stream through memory and each fold's
+// centroids stay in cache while its documents are classified.
 type classifier struct {
 	m       *Matrix
 	fold    []int
 	k       int // folds
 	classes int
+	order   []int   // documents, fold after fold
+	start   []int   // order[p]'s entries are cols and vals[start[p]:start[p+1]]
+	cols    []int32 // term of each entry
+	vals    []float64
 }
+
+// newClassifier prepares the rows of m for folds fold (0 … k-1) and the
+// given number of classes.
+func newClassifier(m *Matrix, fold []int, k, classes int) *classifier {
+	c := &classifier{m: m, fold: fold, k: k, classes: classes}
+	for f := range k {
+		for i, fi := range fold {
+			if fi == f {
+				c.order = append(c.order, i)
+			}
+		}
+	}
+	c.start = append(c.start, 0)
+	for _, i := range c.order {
+		for _, e := range m.Rows[i] {
+			c.cols = append(c.cols, e.col)
+			c.vals = append(c.vals, e.val)
+		}
+		c.start = append(c.start, len(c.cols))
+	}
+	return c
+}
+
+// cvWork is one worker's scratch space for accuracy, reused across
+// labelings. Sums and centroids are laid out term by term with the classes
+// side by side, so that a document's terms read each class's value from
+// one cache line.
+type cvWork struct {
+	sums  []float64 // folds × terms × stride: per fold, the sums of each class's rows; then that fold's training centroids
+	total []float64 // terms × stride
+	cnt   []int     // folds × stride
+	inv   []float64 // folds × stride: 1 / training count, or NaN when a class is absent from a training set
+	norms []float64 // folds × stride: squared norms of the training centroids
+	dots  []float64 // stride
+}
+
+func (c *classifier) work() *cvWork {
+	v, nc := len(c.m.Vocabulary), c.stride()
+	fc := c.k * nc
+	return &cvWork{sums: make([]float64, c.k*v*nc), total: make([]float64, v*nc),
+		cnt: make([]int, fc), inv: make([]float64, fc), norms: make([]float64, fc), dots: make([]float64, nc)}
+}
+
+// stride is the number of classes rounded up to a multiple of eight: the
+// layout's classes per term, the extra ones never filled nor candidates.
+func (c *classifier) stride() int { return (c.classes + 7) &^ 7 }
 
 // accuracy is the share of documents whose nearest training centroid (by
 // Euclidean distance, as scikit-learn's NearestCentroid) is their own
 // class's, each document classified by centroids of the other folds.
 // Classes absent from a training set are not candidates. Ties go to the
-// lower class index. It also returns the predictions.
-func (c *classifier) accuracy(label []int, pred []int) float64 {
-	v := len(c.m.Vocabulary)
+// lower class index. It also returns the predictions when pred is not nil.
+// w is scratch space from c.work.
+func (c *classifier) accuracy(label []int, pred []int, w *cvWork) float64 {
+	v, nc := len(c.m.Vocabulary), c.stride()
+	clear(w.sums)
+	clear(w.cnt)
 	// Sums per fold and class, then class totals.
-	sums := make([][]float64, c.k*c.classes)
-	cnt := make([]int, c.k*c.classes)
-	for i := range sums {
-		sums[i] = make([]float64, v)
-	}
-	for i, r := range c.m.Rows {
-		s := sums[c.fold[i]*c.classes+label[i]]
-		cnt[c.fold[i]*c.classes+label[i]]++
-		for _, e := range r {
-			s[e.col] += e.val
+	for p, i := range c.order {
+		f := c.fold[i]
+		w.cnt[f*nc+label[i]]++
+		s := w.sums[f*v*nc+label[i]:]
+		vals := c.vals[c.start[p]:c.start[p+1]]
+		for q, col := range c.cols[c.start[p]:c.start[p+1]] {
+			s[int(col)*nc] += vals[q]
 		}
 	}
-	total := make([][]float64, c.classes)
-	totalCnt := make([]int, c.classes)
-	for cl := range c.classes {
-		total[cl] = make([]float64, v)
-		for f := range c.k {
-			for j, x := range sums[f*c.classes+cl] {
-				total[cl][j] += x
-			}
-			totalCnt[cl] += cnt[f*c.classes+cl]
+	clear(w.total)
+	for f := range c.k {
+		for j, x := range w.sums[f*v*nc : (f+1)*v*nc] {
+			w.total[j] += x
 		}
 	}
 	// Centroids of the training set of each fold, reusing the sums.
-	norms := make([]float64, c.k*c.classes)
 	for f := range c.k {
-		for cl := range c.classes {
-			idx := f*c.classes + cl
-			nTrain := totalCnt[cl] - cnt[idx]
-			s := sums[idx]
-			if nTrain == 0 {
-				norms[idx] = math.NaN()
-				continue
+		for cl := range nc {
+			idx := f*nc + cl
+			nTrain := 0
+			for g := range c.k {
+				nTrain += w.cnt[g*nc+cl]
 			}
-			inv := 1 / float64(nTrain)
-			nn := 0.0
-			for j := range s {
-				s[j] = (total[cl][j] - s[j]) * inv
-				nn += s[j] * s[j]
+			nTrain -= w.cnt[idx]
+			w.inv[idx] = math.NaN()
+			if nTrain > 0 {
+				w.inv[idx] = 1 / float64(nTrain)
 			}
-			norms[idx] = nn
+		}
+		inv := w.inv[f*nc : (f+1)*nc]
+		norms := w.norms[f*nc : (f+1)*nc]
+		clear(norms)
+		s := w.sums[f*v*nc : (f+1)*v*nc]
+		for j := 0; j < len(s); j += nc {
+			sj, tj := s[j:j+nc], w.total[j:j+nc]
+			for cl, x := range inv {
+				if math.IsNaN(x) {
+					continue
+				}
+				sj[cl] = (tj[cl] - sj[cl]) * x
+				norms[cl] += sj[cl] * sj[cl]
+			}
 		}
 	}
 	correct := 0
-	for i, r := range c.m.Rows {
+	dots := w.dots
+	for p, i := range c.order {
 		f := c.fold[i]
+		cent := w.sums[f*v*nc : (f+1)*v*nc]
+		vals := c.vals[c.start[p]:c.start[p+1]]
+		cols := c.cols[c.start[p]:c.start[p+1]]
+		// Eight classes at a time, in local sums: a sum kept in memory would
+		// make every term wait for the previous term's store.
+		for c0 := 0; c0 < nc; c0 += 8 {
+			var d0, d1, d2, d3, d4, d5, d6, d7 float64
+			for q, col := range cols {
+				x := vals[q]
+				cs := cent[int(col)*nc+c0:][:8]
+				d0 += x * cs[0]
+				d1 += x * cs[1]
+				d2 += x * cs[2]
+				d3 += x * cs[3]
+				d4 += x * cs[4]
+				d5 += x * cs[5]
+				d6 += x * cs[6]
+				d7 += x * cs[7]
+			}
+			copy(dots[c0:c0+8], []float64{d0, d1, d2, d3, d4, d5, d6, d7})
+		}
 		best, bestCl := math.Inf(1), -1
-		for cl := range c.classes {
-			idx := f*c.classes + cl
-			if math.IsNaN(norms[idx]) {
+		for cl, dot := range dots[:c.classes] {
+			idx := f*nc + cl
+			if math.IsNaN(w.inv[idx]) {
 				continue
 			}
-			cent := sums[idx]
-			dot := 0.0
-			for _, e := range r {
-				dot += e.val * cent[e.col]
-			}
-			if d := norms[idx] - 2*dot; d < best {
+			if d := w.norms[idx] - 2*dot; d < best {
 				best, bestCl = d, cl
 			}
 		}
@@ -446,9 +520,9 @@ func Build(docs []Doc, arms []string, opt Options) (*Result, error) {
 		most = max(most, present[a])
 	}
 	res.Chance = float64(most) / float64(len(docs))
-	cl := &classifier{m: m, fold: Folds(len(docs), opt.Folds, opt.Seed), k: opt.Folds, classes: k}
+	cl := newClassifier(m, Folds(len(docs), opt.Folds, opt.Seed), opt.Folds, k)
 	res.Pred = make([]int, len(docs))
-	res.Accuracy = cl.accuracy(res.DocArm, res.Pred)
+	res.Accuracy = cl.accuracy(res.DocArm, res.Pred, cl.work())
 	res.P = math.NaN()
 	if opt.Permutations > 0 {
 		workers := min(runtime.GOMAXPROCS(0), opt.Permutations)
@@ -459,11 +533,12 @@ func Build(docs []Doc, arms []string, opt Options) (*Result, error) {
 			go func() {
 				defer wg.Done()
 				label := make([]int, len(docs))
+				work := cl.work()
 				for p := w; p < opt.Permutations; p += workers {
 					copy(label, res.DocArm)
 					rng := rand.New(rand.NewPCG(opt.Seed, uint64(p)+1))
 					rng.Shuffle(len(label), func(i, j int) { label[i], label[j] = label[j], label[i] })
-					if cl.accuracy(label, nil) >= res.Accuracy-1e-12 {
+					if cl.accuracy(label, nil, work) >= res.Accuracy-1e-12 {
 						hits[w]++
 					}
 				}

@@ -132,9 +132,9 @@ func TestMatchesScikitLearn(t *testing.T) {
 		}
 	})
 	t.Run("OKNearestCentroidCV", func(t *testing.T) {
-		cl := &classifier{m: m, fold: folds, k: 5, classes: 3}
+		cl := newClassifier(m, folds, 5, 3)
 		pred := make([]int, len(texts))
-		acc := cl.accuracy(labels, pred)
+		acc := cl.accuracy(labels, pred, cl.work())
 		if !slices.Equal(pred, ref.Pred) {
 			t.Fatalf("got predictions %v, want %v (scikit-learn)", pred, ref.Pred)
 		}
