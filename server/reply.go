@@ -16,6 +16,7 @@ import (
 
 	"trialogue/arms"
 	"trialogue/arms/codes"
+	"trialogue/arms/flags"
 	"trialogue/arms/responder"
 	"trialogue/store"
 )
@@ -24,6 +25,8 @@ import (
 type replyBody struct {
 	Text     string `json:"text"`
 	ClientID string `json:"client_id"`
+	// Typing is how the reply was typed, as the page measured it; optional.
+	Typing *flags.Typing `json:"typing,omitempty"`
 }
 
 var clientIDPattern = regexp.MustCompile(`^[A-Za-z0-9_-]{1,64}$`)
@@ -37,7 +40,7 @@ type replyAnswer struct {
 
 // handleReply commits a respondent's reply, then has the model answer it.
 //
-// POST /c/{token}/reply  {"text", "client_id"}
+// POST /c/{token}/reply  {"text", "client_id", "typing"}
 func (s *Server) handleReply(w http.ResponseWriter, r *http.Request) {
 	req := fromContext(r.Context())
 	var body replyBody
@@ -49,10 +52,17 @@ func (s *Server) handleReply(w http.ResponseWriter, r *http.Request) {
 		s.fail(w, r, &Error{Status: http.StatusBadRequest, Key: "server_error", Field: "client_id", Msg: "client_id must be 1 to 64 letters, digits, - or _"})
 		return
 	}
+	if body.Typing != nil {
+		var fe *flags.FieldError
+		if err := body.Typing.Check(); errors.As(err, &fe) {
+			s.fail(w, r, &Error{Status: http.StatusBadRequest, Key: "server_error", Field: fe.Field, Msg: fe.Error()})
+			return
+		}
+	}
 	unlock := s.locks.lock(req.sess.ID)
 	defer unlock()
 	arm := req.study.Def.Arms[req.sess.Arm]
-	added, err := s.store.AddReply(r.Context(), req.sess, body.Text, body.ClientID, func(done []store.Turn, finished bool) error {
+	added, err := s.store.AddTypedReply(r.Context(), req.sess, body.Text, body.ClientID, body.Typing, func(done []store.Turn, finished bool) error {
 		return arm.CheckReply(store.Progress(arm, done, finished), body.Text)
 	})
 	if err != nil {
@@ -234,6 +244,10 @@ func (s *Server) readJSON(w http.ResponseWriter, r *http.Request, v any) error {
 	dec := json.NewDecoder(strings.NewReader(string(b)))
 	dec.DisallowUnknownFields()
 	if err := dec.Decode(v); err != nil {
+		var te *json.UnmarshalTypeError
+		if errors.As(err, &te) {
+			return &Error{Status: http.StatusBadRequest, Key: "server_error", Field: te.Field, Msg: "the request body is not the expected JSON object: " + err.Error()}
+		}
 		return &Error{Status: http.StatusBadRequest, Key: "server_error", Msg: "the request body is not the expected JSON object: " + err.Error()}
 	}
 	if dec.More() {

@@ -8,6 +8,7 @@ import (
 
 	"trialogue/arms"
 	"trialogue/arms/codes"
+	"trialogue/arms/flags"
 )
 
 // Roles of a turn.
@@ -39,6 +40,9 @@ type Turn struct {
 	RequestSHA256    string
 	TextSHA256       string
 	StudyHash        string
+	// Typing is how a respondent typed the reply, as the page measured it;
+	// nil for model turns and for replies sent without measures.
+	Typing *flags.Typing
 }
 
 // Progress summarises turns for the arm's rules.
@@ -68,7 +72,8 @@ type queryer interface {
 const turnSelect = `SELECT session_id, idx, role, text, COALESCE(client_id, ''), started_at, created_at, COALESCE(latency_ms, 0),
 	COALESCE(model_requested, ''), COALESCE(model_reported, ''), COALESCE(fingerprint, ''), COALESCE(params, ''),
 	COALESCE(prompt_tokens, 0), COALESCE(completion_tokens, 0), COALESCE(retries, 0), COALESCE(finish_reason, ''),
-	COALESCE(system_sha256, ''), COALESCE(request_sha256, ''), text_sha256, study_hash FROM turns`
+	COALESCE(system_sha256, ''), COALESCE(request_sha256, ''), text_sha256, study_hash,
+	typing_ms, keystrokes, pastes, hidden_count FROM turns`
 
 func turns(ctx context.Context, q queryer, sessionID int64) ([]Turn, error) {
 	out, err := scanTurns(q.QueryContext(ctx, turnSelect+` WHERE session_id = ? ORDER BY idx`, sessionID))
@@ -88,10 +93,15 @@ func scanTurns(rows *sql.Rows, err error) ([]Turn, error) {
 	for rows.Next() {
 		var t Turn
 		var started, created string
+		var typing [4]sql.NullInt64
 		if err := rows.Scan(&t.SessionID, &t.Index, &t.Role, &t.Text, &t.ClientID, &started, &created, &t.LatencyMS,
 			&t.ModelRequested, &t.ModelReported, &t.Fingerprint, &t.Params, &t.PromptTokens, &t.CompletionTokens,
-			&t.Retries, &t.FinishReason, &t.SystemSHA256, &t.RequestSHA256, &t.TextSHA256, &t.StudyHash); err != nil {
+			&t.Retries, &t.FinishReason, &t.SystemSHA256, &t.RequestSHA256, &t.TextSHA256, &t.StudyHash,
+			&typing[0], &typing[1], &typing[2], &typing[3]); err != nil {
 			return nil, err
+		}
+		if typing[0].Valid {
+			t.Typing = &flags.Typing{TypingMS: typing[0].Int64, Keystrokes: typing[1].Int64, Pastes: typing[2].Int64, HiddenCount: typing[3].Int64}
 		}
 		if t.StartedAt, err = parseTime(started); err != nil {
 			return nil, err
@@ -116,6 +126,18 @@ type Added struct {
 // makes one turn. check sees the session's turns and whether it is finished,
 // inside the transaction, and may refuse the reply.
 func (s *Store) AddReply(ctx context.Context, sess Session, text, clientID string, check func(done []Turn, finished bool) error) (Added, error) {
+	return s.AddTypedReply(ctx, sess, text, clientID, nil, check)
+}
+
+// AddTypedReply is AddReply with the typing measures the respondent page
+// sent (nil for none), stored with the turn. A resent client id keeps the
+// measures of the first send.
+func (s *Store) AddTypedReply(ctx context.Context, sess Session, text, clientID string, typing *flags.Typing, check func(done []Turn, finished bool) error) (Added, error) {
+	if typing != nil {
+		if err := typing.Check(); err != nil {
+			return Added{}, fmt.Errorf("add reply: %w", err)
+		}
+	}
 	var a Added
 	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
 		a = Added{}
@@ -141,7 +163,7 @@ func (s *Store) AddReply(ctx context.Context, sess Session, text, clientID strin
 		}
 		now := s.now()
 		a.Turn = Turn{SessionID: sess.ID, Index: len(done), Role: RoleRespondent, Text: text, ClientID: clientID,
-			StartedAt: now, CreatedAt: now, TextSHA256: codes.SHA256Hex([]byte(text)), StudyHash: sess.StudyHash}
+			StartedAt: now, CreatedAt: now, TextSHA256: codes.SHA256Hex([]byte(text)), StudyHash: sess.StudyHash, Typing: typing}
 		a.Turns = append(done, a.Turn)
 		if err := insertTurn(ctx, tx, a.Turn); err != nil {
 			return err
@@ -195,13 +217,21 @@ func turnEvent(t Turn) map[string]any {
 }
 
 func insertTurn(ctx context.Context, tx *Tx, t Turn) error {
+	var typing [4]sql.NullInt64
+	if t.Typing != nil {
+		for i, v := range []int64{t.Typing.TypingMS, t.Typing.Keystrokes, t.Typing.Pastes, t.Typing.HiddenCount} {
+			typing[i] = sql.NullInt64{Int64: v, Valid: true}
+		}
+	}
 	_, err := tx.ExecContext(ctx, `INSERT INTO turns (session_id, idx, role, text, client_id, started_at, created_at, latency_ms,
 		model_requested, model_reported, fingerprint, params, prompt_tokens, completion_tokens, retries, finish_reason,
-		system_sha256, request_sha256, text_sha256, study_hash) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
+		system_sha256, request_sha256, text_sha256, study_hash, typing_ms, keystrokes, pastes, hidden_count)
+		VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)`,
 		t.SessionID, t.Index, t.Role, t.Text, nullString(t.ClientID), fmtTime(t.StartedAt), fmtTime(t.CreatedAt), nullInt(t.LatencyMS, t.Role),
 		nullString(t.ModelRequested), nullString(t.ModelReported), nullString(t.Fingerprint), nullString(t.Params),
 		nullInt(int64(t.PromptTokens), t.Role), nullInt(int64(t.CompletionTokens), t.Role), nullInt(int64(t.Retries), t.Role),
-		nullString(t.FinishReason), nullString(t.SystemSHA256), nullString(t.RequestSHA256), t.TextSHA256, t.StudyHash)
+		nullString(t.FinishReason), nullString(t.SystemSHA256), nullString(t.RequestSHA256), t.TextSHA256, t.StudyHash,
+		typing[0], typing[1], typing[2], typing[3])
 	return err
 }
 
