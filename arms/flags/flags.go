@@ -166,7 +166,7 @@ func Describe(def *arms.Study) []Definition {
 		{Satisficed, fmt.Sprintf("at least half of the replies are under %d words, or a reply repeats an earlier one, or a reply of %d or more words was written in under %d ms per word (typing time, or the time since the previous message when the page sent no typing measures)", st.ShortWords, FastMinWords, FastMSPerWord)},
 		{Pasted, "the respondent page recorded a paste or drop into the reply box"},
 		{Errors, "a model call failed after every retry, or a model message needed retries"},
-		{Overtime, fmt.Sprintf("more than %s passed from entry to finishing (or to the last message of an unfinished session)", st.TimeLimit)},
+		{Overtime, fmt.Sprintf("more than %s passed from entry to finishing (or to the last message of an unfinished session)", roundDuration(st.TimeLimit))},
 	}
 }
 

@@ -189,7 +189,7 @@ func TestDescribe(t *testing.T) {
 			flags.Conceded:   "(advocate, listen)",
 			flags.Revealed:   "(age, party, stance, town)",
 			flags.Satisficed: "under 4 words",
-			flags.Overtime:   "more than 30m0s",
+			flags.Overtime:   "more than 30m passed",
 		} {
 			if got := d[slices.Index(flags.Codes, code)].Meaning; !strings.Contains(got, want) {
 				t.Fatalf("%s: got %q, want it to contain %q", code, got, want)
@@ -202,7 +202,7 @@ func TestDescribe(t *testing.T) {
 			flags.Conceded:   "(advocate), a model message uses a phrase of giving up that side (2 phrases)",
 			flags.Revealed:   "(town)",
 			flags.Satisficed: "under 2 words",
-			flags.Overtime:   "more than 10m0s",
+			flags.Overtime:   "more than 10m passed",
 		} {
 			if got := d[slices.Index(flags.Codes, code)].Meaning; !strings.Contains(got, want) {
 				t.Fatalf("%s: got %q, want it to contain %q", code, got, want)

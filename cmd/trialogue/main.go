@@ -42,6 +42,7 @@ Commands:
   trialogue arms-map --db PATH --study ID [--permutations N] [--out DIR]
   trialogue simulate --url URL --study ID --respondents N --concurrency C [--personas FILE] [--persona-endpoint NAME --study-file FILE] [--think-time D] [--report FILE]
   trialogue backup --db PATH --out FILE
+  trialogue export --db PATH --study ID --out DIR [--include-pilot] [--include-synthetic] [--release]
 
 Run "trialogue COMMAND -h" for a command's flags.
 `
@@ -77,6 +78,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runSimulate(ctx, args[1:], stdout, stderr)
 	case "backup":
 		return runBackup(ctx, args[1:], stdout, stderr)
+	case "export":
+		return runExport(ctx, args[1:], stdout, stderr)
 	case "help", "-h", "--help":
 		fmt.Fprint(stdout, usage())
 		return exitOK

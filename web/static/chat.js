@@ -17,6 +17,7 @@
   var store = window.sessionStorage;
   var draftKey = "trialogue:draft:" + app.dataset.token;
   var pendingKey = "trialogue:pending:" + app.dataset.token;
+  var typingKey = "trialogue:typing:" + app.dataset.token;
   // With reduced motion the reply appears whole, without a typing effect.
   var calm = window.matchMedia && window.matchMedia("(prefers-reduced-motion: reduce)").matches;
   // Streaming needs a readable response body; without one, plain JSON.
@@ -33,6 +34,20 @@
   function get(k) { try { return store.getItem(k); } catch (e) { return null; } }
   function put(k, v) { try { if (v === null) store.removeItem(k); else store.setItem(k, v); } catch (e) { /* storage may be off */ } }
   function saveDraft() { put(draftKey, box.value || null); }
+
+  // How the reply in the box is being written, sent with it as "typing":
+  // when the box first changed, changes typed, pastes and drops, and times
+  // the page was hidden since the previous reply. Kept with the draft.
+  var typing = null;
+  function resetTyping() { typing = { start: 0, keys: 0, pastes: 0, hidden: 0 }; put(typingKey, null); }
+  function saveTyping() { put(typingKey, JSON.stringify(typing)); }
+  function touched() { if (!typing.start) typing.start = Date.now(); }
+  function measures() {
+    if (!typing.start) return undefined; // nothing written on this page: no measures
+    var cap = function (n, max) { return Math.max(0, Math.min(Math.round(n), max)); };
+    return { typing_ms: cap(Date.now() - typing.start, 86400000), keystrokes: cap(typing.keys, 1000000),
+      pastes: cap(typing.pastes, 10000), hidden_count: cap(typing.hidden, 10000) };
+  }
 
   function addMessage(role, text) {
     var li = document.createElement("li");
@@ -173,7 +188,7 @@
     function clearDraft() { text = ""; draftText.textContent = ""; draft.hidden = true; }
     function onEvent(ev, d) {
       if (ev === "saved") {
-        if (sentText !== undefined) { addMessage("respondent", sentText); box.value = ""; saveDraft(); toBottom(); }
+        if (sentText !== undefined) { addMessage("respondent", sentText); box.value = ""; saveDraft(); resetTyping(); toBottom(); }
       } else if (ev === "chunk") {
         if (calm) return;
         var stick = draft.hidden || nearBottom();
@@ -186,7 +201,7 @@
       } else if (ev === "done") {
         clearDraft();
         put(pendingKey, null);
-        if (sentText !== undefined && box.value === sentText) { box.value = ""; saveDraft(); }
+        if (sentText !== undefined && box.value === sentText) { box.value = ""; saveDraft(); resetTyping(); }
         var stick = sentText !== undefined || nearBottom();
         busy = false;
         syncLog(d.state.messages);
@@ -237,11 +252,25 @@
     // stores it once.
     var pending = null;
     try { pending = JSON.parse(get(pendingKey)); } catch (err) { /* none kept */ }
-    var id = pending && pending.text === text ? pending.id : newID();
-    put(pendingKey, JSON.stringify({ text: text, id: id }));
-    ask("/reply", { text: text, client_id: id }, text);
+    var again = pending && pending.text === text;
+    var id = again ? pending.id : newID();
+    var measured = again && pending.typing ? pending.typing : measures();
+    put(pendingKey, JSON.stringify({ text: text, id: id, typing: measured }));
+    var body = { text: text, client_id: id };
+    if (measured) body.typing = measured;
+    ask("/reply", body, text);
   });
-  box.addEventListener("input", saveDraft);
+  box.addEventListener("input", function (e) {
+    saveDraft();
+    touched();
+    if (!/^insertFrom(Paste|Drop)/.test(e.inputType || "")) typing.keys++;
+    saveTyping();
+  });
+  box.addEventListener("paste", function () { touched(); typing.pastes++; saveTyping(); });
+  box.addEventListener("drop", function () { touched(); typing.pastes++; saveTyping(); });
+  document.addEventListener("visibilitychange", function () {
+    if (document.hidden) { typing.hidden++; saveTyping(); }
+  });
   box.addEventListener("keydown", function (e) {
     if (e.key === "Enter" && (e.ctrlKey || e.metaKey)) { e.preventDefault(); form.requestSubmit(); }
   });
@@ -272,5 +301,9 @@
 
   var saved = get(draftKey);
   if (saved) box.value = saved;
+  var kept = null;
+  try { kept = JSON.parse(get(typingKey)); } catch (e) { /* none kept */ }
+  resetTyping();
+  if (saved && kept && typeof kept.keys === "number") { typing = kept; saveTyping(); }
   refresh();
 })();
