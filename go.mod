@@ -9,6 +9,7 @@ require (
 	github.com/goccy/go-yaml v1.19.2
 	github.com/pressly/goose/v3 v3.30.0
 	github.com/sashabaranov/go-openai v1.43.0
+	golang.org/x/crypto v0.58.0
 	modernc.org/sqlite v1.62.0
 )
 

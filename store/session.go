@@ -61,12 +61,9 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		if !errors.Is(err, ErrNotFound) {
 			return err
 		}
-		var phase string
-		if err := tx.QueryRowContext(ctx, `SELECT phase FROM studies WHERE id = ?`, sv.ID).Scan(&phase); err != nil {
+		pilot, err := entryRule(ctx, tx, sv)
+		if err != nil {
 			return err
-		}
-		if phase == PhaseClosed {
-			return ErrStudyClosed
 		}
 		var slot int
 		err = tx.QueryRowContext(ctx, `SELECT next_slot FROM strata WHERE study_id = ? AND stratum = ?`, sv.ID, stratum).Scan(&slot)
@@ -77,9 +74,9 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		now := s.now()
 		sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
 			Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now, Language: r.Language}
-		res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language)
-			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''))`,
-			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language)
+		res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language, pilot)
+			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''), ?)`,
+			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language, pilot)
 		if err != nil {
 			return err
 		}

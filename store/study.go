@@ -43,6 +43,9 @@ func (s *Store) RegisterStudy(ctx context.Context, st *arms.Study, source []byte
 		}
 		err = tx.QueryRowContext(ctx, `SELECT version FROM study_versions WHERE study_id = ? AND hash = ?`, st.ID, hash).Scan(&sv.Version)
 		if errors.Is(err, sql.ErrNoRows) {
+			if err := checkFrozen(ctx, tx, st); err != nil {
+				return err
+			}
 			err = tx.QueryRowContext(ctx, `SELECT COALESCE(MAX(version), 0) + 1 FROM study_versions WHERE study_id = ?`, st.ID).Scan(&sv.Version)
 			if err == nil {
 				_, err = tx.ExecContext(ctx, `INSERT INTO study_versions (study_id, version, hash, canonical, source, created_at) VALUES (?, ?, ?, ?, ?, ?)`,
