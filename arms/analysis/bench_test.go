@@ -91,3 +91,29 @@ func BenchmarkEffectsNone(b *testing.B) {
 		}
 	}
 }
+
+// BenchmarkRedrawStratum is one re-draw of one stratum of 33,334 analysed
+// respondents (a third of BenchmarkEffectsNone's) in the demo study's
+// blocks of 6 and 12: dealing the blocks and summing the outcome per arm.
+func BenchmarkRedrawStratum(b *testing.B) {
+	demo, _, err := arms.ParseFile("../../testdata/demo-study.yaml")
+	if err != nil {
+		b.Fatal(err)
+	}
+	sc := demo.Scheme()
+	rng := rand.New(rand.NewPCG(1, 2))
+	st := &riStratum{need: 33334, v: make([]float64, 33334)}
+	for i := range st.v {
+		st.v[i] = rng.NormFloat64()
+	}
+	d := newDealer(sc)
+	seq := make([]int32, st.need+d.maxBlock())
+	acc := make([]float64, 2*len(sc.Arms))
+	draw := 0
+	for b.Loop() {
+		d.seed(drawSeed(1, draw))
+		draw++
+		d.deal(seq, st, 1, acc)
+	}
+	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N)/float64(st.need), "ns/slot")
+}

@@ -31,6 +31,16 @@ const (
 // DefaultPermutations is the number of randomization-inference re-draws.
 const DefaultPermutations = 10000
 
+// Statistics of the randomization test.
+const (
+	// RIEstimate is the reported estimate itself (adjustments none and pre).
+	RIEstimate = "estimate"
+	// RIResidualMeans is each treatment arm's mean residual minus the
+	// control's, the residuals from regressing the outcome on the
+	// covariates and stratum indicators alone (adjustment lin).
+	RIResidualMeans = "residual difference in means"
+)
+
 // Unit is one assigned respondent, as the store knows them.
 type Unit struct {
 	RID        string
@@ -72,7 +82,7 @@ type Effect struct {
 	Low         float64 `json:"ci_low"` // 95% confidence interval
 	High        float64 `json:"ci_high"`
 	PHolm       float64 `json:"p_holm"`
-	PRI         float64 `json:"p_ri"` // NaN when randomization inference was skipped
+	PRI         float64 `json:"p_ri"` // NaN when randomization inference was skipped; see Report.RIStatistic
 }
 
 // Report is the whole analysis of one outcome.
@@ -88,6 +98,9 @@ type Report struct {
 	Effects      []Effect `json:"effects"`
 	Permutations int      `json:"permutations"`
 	Seed         uint64   `json:"ri_seed"`
+	// RIStatistic is what the randomization test recomputes on each
+	// re-draw: RIEstimate or RIResidualMeans; empty when it was skipped.
+	RIStatistic string `json:"ri_statistic,omitempty"`
 
 	Balance   []BalanceRow  `json:"balance"`
 	Omnibus   []BalanceTest `json:"balance_tests"`
@@ -161,6 +174,10 @@ func Analyze(study *arms.Study, units []Unit, t *Table, spec Spec) (*Report, err
 		pri, err = s.randomization(d, est)
 		if err != nil {
 			return nil, err
+		}
+		rep.RIStatistic = RIEstimate
+		if spec.Adjust == AdjustLin {
+			rep.RIStatistic = RIResidualMeans
 		}
 	}
 	ps := make([]float64, len(d.treatments))

@@ -142,6 +142,9 @@ func WriteText(w io.Writer, rep *Report) error {
 	fmt.Fprintf(w, "t tests with %g residual degrees of freedom; Holm across %d arms", rep.Effects[0].DF, len(rep.Effects))
 	if rep.Permutations > 0 {
 		fmt.Fprintf(w, "; RI from %d re-draws of the study's blocked scheme (seed %d)", rep.Permutations, rep.Seed)
+		if rep.RIStatistic == RIResidualMeans {
+			fmt.Fprint(w, " on the difference in mean covariate-adjusted residuals")
+		}
 	}
 	fmt.Fprint(w, ".\n\nBalance (all assigned respondents): omnibus tests across arms\n")
 	tw = tabwriter.NewWriter(w, 0, 4, 2, ' ', 0)

@@ -5,7 +5,6 @@ import (
 	"encoding/binary"
 	"fmt"
 	"math"
-	"math/bits"
 	"math/rand/v2"
 	"runtime"
 	"slices"
@@ -23,8 +22,8 @@ import (
 // an exact permutation of the ratio, with fresh seeds) but not the audited
 // ChaCha8 stream of package assign that fixes the study's own sequence:
 // any uniform draws give re-draws from the same distribution. A dealer
-// allocates nothing per block, and one 64-bit output shuffles a whole
-// block of up to 20 slots.
+// allocates nothing per block and spends little randomness: one 32-bit
+// word serves up to four draws of a shuffle.
 type dealer struct {
 	src    rand.PCG
 	blocks []dealBlock
@@ -32,22 +31,28 @@ type dealer struct {
 
 // dealBlock is one block size: the ratio list (each arm, in declared
 // order, repeated its share of the block), where each arm's run of the
-// list ends, and the draws of the shuffle grouped into batches that one
-// 64-bit output serves.
+// list ends, and the steps of its shuffle.
 type dealBlock struct {
-	ratio   []int32
-	ends    []int // ends[a]: one past arm a's last entry in ratio
-	batches []batch
+	ratio []int32
+	ends  []int  // ends[a]: one past arm a's last entry in ratio
+	steps []step // steps[k] draws the swap partner of entry k+1
 }
 
-// batch covers the shuffle's steps i = lo … hi, each drawing j uniform in
-// [0, i]; prod is the product of those ranges (below 2^64) and reject =
-// 2^64 mod prod, the rejection threshold.
-type batch struct {
-	lo, hi int
-	prod   uint64
-	reject uint64
+// step is one draw of the shuffle: j uniform in [0, i] for entry i. Draws
+// are grouped into batches that one 32-bit word serves: a batch's first
+// step takes a fresh word, and carries the product of the batch's ranges
+// (below 2^32) and its rejection threshold 2^32 mod prod.
+type step struct {
+	rng    uint32 // i + 1
+	fresh  bool
+	prod   uint32
+	reject uint32
 }
+
+// batchSteps bounds the steps of a batch. Every block size then takes
+// fresh words at the same steps, which keeps the processor's branch
+// predictions right whatever size was drawn.
+const batchSteps = 4
 
 // newDealer prepares a dealer for the scheme, which must be valid.
 func newDealer(sc assign.Scheme) *dealer {
@@ -65,17 +70,17 @@ func newDealer(sc assign.Scheme) *dealer {
 			b.ends = append(b.ends, len(b.ratio))
 		}
 		for i := 1; i < size; {
-			bt := batch{lo: i, prod: 1}
-			for ; i < size; i++ {
-				hi, lo := bits.Mul64(bt.prod, uint64(i+1))
-				if hi != 0 {
+			first := len(b.steps)
+			prod := uint64(1)
+			for ; i < size && len(b.steps)-first < batchSteps; i++ {
+				if prod*uint64(i+1) > math.MaxUint32 {
 					break
 				}
-				bt.prod = lo
+				prod *= uint64(i + 1)
+				b.steps = append(b.steps, step{rng: uint32(i + 1)})
 			}
-			bt.hi = i - 1
-			bt.reject = -bt.prod % bt.prod
-			b.batches = append(b.batches, bt)
+			p := uint32(prod)
+			b.steps[first].fresh, b.steps[first].prod, b.steps[first].reject = true, p, -p%p
 		}
 		d.blocks = append(d.blocks, b)
 	}
@@ -85,50 +90,55 @@ func newDealer(sc assign.Scheme) *dealer {
 // seed restarts the dealer's stream.
 func (d *dealer) seed(seed1, seed2 uint64) { d.src.Seed(seed1, seed2) }
 
-// uniform returns an integer uniform in [0, n) for 1 ≤ n by Lemire's
-// multiply-and-reject method: exact, and without a division unless the
-// first product falls in the (rare) band that may need rejecting.
-func (d *dealer) uniform(n uint64) uint64 {
-	hi, lo := bits.Mul64(d.src.Uint64(), n)
-	if lo < n {
-		thresh := -n % n
-		for lo < thresh {
-			hi, lo = bits.Mul64(d.src.Uint64(), n)
-		}
-	}
-	return hi
-}
-
 // next deals the next block into dst (which must hold the largest block)
 // and returns the index of its size among the scheme's: the size drawn
 // uniformly, then the block's ratio list in a uniformly random order, by
 // the inside-out Fisher–Yates shuffle, so every block is an exact
 // permutation of the ratio.
+//
+// Each 64-bit output of the generator is two 32-bit words, low half first.
+// A draw uniform in [0, n) from a word x is the high half of x·n, exact
+// by Lemire's method: x is rejected, and a fresh word taken, when the low
+// half of x·n falls below 2^32 mod n (rare for small n). A batch draws
+// several: successive high halves of x·(i+1), then of the low half times
+// the next range, … are the mixed-radix digits of ⌊x·prod / 2^32⌋, and
+// the last low half is x·prod mod 2^32, so rejecting x by the batch's
+// threshold makes the digits independent uniform draws.
 func (d *dealer) next(dst []int32) int {
+	out := d.src.Uint64()
 	bi := 0
-	if len(d.blocks) > 1 {
-		bi = int(d.uniform(uint64(len(d.blocks))))
+	if nb := uint32(len(d.blocks)); nb > 1 {
+		m := uint64(uint32(out)) * uint64(nb)
+		if uint32(m) < nb {
+			for thresh := -nb % nb; uint32(m) < thresh; {
+				m = uint64(uint32(d.src.Uint64())) * uint64(nb)
+			}
+		}
+		bi = int(m >> 32)
 	}
 	b := &d.blocks[bi]
 	ratio := b.ratio
 	dst = dst[:len(ratio)]
 	dst[0] = ratio[0]
-	for _, bt := range b.batches {
-		// Successive high words of x·(lo+1), then of the low word times the
-		// next range, … are the mixed-radix digits of ⌊x·prod / 2^64⌋, and
-		// the last low word is x·prod mod 2^64. Rejecting x when that falls
-		// below 2^64 mod prod makes ⌊x·prod / 2^64⌋ uniform on [0, prod)
-		// (Lemire's method), so the digits are independent uniform draws.
-		x := d.src.Uint64()
-		for x*bt.prod < bt.reject {
-			x = d.src.Uint64()
+	spare, has := uint32(out>>32), true
+	var x uint32
+	for k, st := range b.steps {
+		if st.fresh {
+			if has {
+				x, has = spare, false
+			} else {
+				out = d.src.Uint64()
+				x, spare, has = uint32(out), uint32(out>>32), true
+			}
+			for x*st.prod < st.reject {
+				x = uint32(d.src.Uint64())
+			}
 		}
-		for i := bt.lo; i <= bt.hi; i++ {
-			var j uint64
-			j, x = bits.Mul64(x, uint64(i+1))
-			dst[i] = dst[j]
-			dst[j] = ratio[i]
-		}
+		m := uint64(x) * uint64(st.rng)
+		j, i := m>>32, k+1
+		x = uint32(m)
+		dst[i] = dst[j]
+		dst[j] = ratio[i]
 	}
 	return bi
 }

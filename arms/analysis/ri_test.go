@@ -16,7 +16,7 @@ import (
 
 // dealSchemes are schemes with equal and unequal ratios, one and several
 // block sizes, and blocks whose shuffle needs one, two and many batches of
-// draws (a block of 21 or more slots does not fit one 64-bit output).
+// draws.
 func dealSchemes(t *testing.T) map[string]assign.Scheme {
 	t.Helper()
 	demo, _, err := arms.ParseFile("../../testdata/demo-study.yaml")
@@ -85,7 +85,7 @@ func TestDealerBlocksArePermutationsOfTheRatio(t *testing.T) {
 
 // TestDealerIsUniform checks by chi-square tests (with fixed seeds, so the
 // outcome is fixed) that blocks of four distinct arms take each of the 24
-// orders equally often, that in blocks of 24 (two batches of draws) every
+// orders equally often, that in blocks of 24 (six batches of draws) every
 // arm is equally likely at every position, and that block sizes are drawn
 // equally often.
 func TestDealerIsUniform(t *testing.T) {
@@ -118,8 +118,14 @@ func TestDealerIsUniform(t *testing.T) {
 		}
 		sc := assign.Scheme{Arms: ar, Blocks: []int{24, 48}}
 		d := newDealer(sc)
-		if got := len(d.blocks[0].batches); got != 2 {
-			t.Fatalf("blocks of 24 use %d batches of draws, want 2", got)
+		fresh := 0
+		for _, st := range d.blocks[0].steps {
+			if st.fresh {
+				fresh++
+			}
+		}
+		if fresh != 6 {
+			t.Fatalf("blocks of 24 take %d words for their 23 draws, want 6", fresh)
 		}
 		d.seed(3, 4)
 		buf := make([]int32, 48)
@@ -254,6 +260,13 @@ func TestRandomizationAgreesWithPlan(t *testing.T) {
 			rep, err := Analyze(st, units, tab, spec)
 			if err != nil {
 				t.Fatal(err)
+			}
+			want := RIEstimate
+			if adjust == AdjustLin {
+				want = RIResidualMeans
+			}
+			if rep.RIStatistic != want {
+				t.Errorf("got RI statistic %q, want %q", rep.RIStatistic, want)
 			}
 			d, err := prepare(st, units, tab, spec)
 			if err != nil {
