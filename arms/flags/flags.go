@@ -25,7 +25,7 @@ import (
 // Flag is one finding about a session.
 type Flag struct {
 	Code   string // one of Codes
-	Reason string // one line for a reviewer; quotes no respondent text
+	Reason string // one line for a reviewer; quotes no reply (a revealed flag names the covariate value)
 }
 
 // The flag codes, in the order flags are listed and exported.

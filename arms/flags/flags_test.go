@@ -49,7 +49,7 @@ type fixture struct {
 // entered is when every fixture session entered; turn times are offsets.
 var entered = time.Date(2027, 3, 1, 9, 0, 0, 0, time.UTC)
 
-func loadStudy(t *testing.T, name string) *arms.Study {
+func loadStudy(t testing.TB, name string) *arms.Study {
 	t.Helper()
 	def, _, err := arms.ParseFile(filepath.Join(fixtures, name))
 	if err != nil {
