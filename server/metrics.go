@@ -28,6 +28,7 @@ type metrics struct {
 	reg       *prometheus.Registry
 	requests  *prometheus.CounterVec
 	turns     *prometheus.HistogramVec
+	overhead  prometheus.Histogram
 	model     *prometheus.HistogramVec
 	modelErrs *prometheus.CounterVec
 	retries   *prometheus.CounterVec
@@ -47,6 +48,9 @@ func newMetrics() *metrics {
 		Help: "HTTP requests answered, by route pattern, method and status code."}, []string{"route", "method", "code"})
 	m.turns = prometheus.NewHistogramVec(prometheus.HistogramOpts{Name: "trialogue_turn_seconds",
 		Help: "Time to answer a reply or a retry, model time included, by route.", Buckets: turnBuckets}, []string{"route"})
+	m.overhead = prometheus.NewHistogram(prometheus.HistogramOpts{Name: "trialogue_turn_overhead_seconds",
+		Help:    "The server's own time per model turn: request to answer, less the model's time.",
+		Buckets: []float64{0.0005, 0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.25, 0.5, 1}})
 	m.model = prometheus.NewHistogramVec(prometheus.HistogramOpts{Name: "trialogue_model_seconds",
 		Help: "Time the model endpoint took per turn, retries and backoff included.", Buckets: turnBuckets}, []string{"study", "endpoint"})
 	m.modelErrs = prometheus.NewCounterVec(prometheus.CounterOpts{Name: "trialogue_model_errors_total",
@@ -57,7 +61,7 @@ func newMetrics() *metrics {
 		Help: "New sessions assigned, by study, arm and whether synthetic."}, []string{"study", "arm", "synthetic"})
 	active := prometheus.NewGaugeFunc(prometheus.GaugeOpts{Name: "trialogue_sessions_active",
 		Help: "Sessions that made a request in the last five minutes."}, m.countActive)
-	m.reg.MustRegister(m.requests, m.turns, m.model, m.modelErrs, m.retries, m.assigned, active,
+	m.reg.MustRegister(m.requests, m.turns, m.overhead, m.model, m.modelErrs, m.retries, m.assigned, active,
 		collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
 	return m
 }

@@ -72,6 +72,7 @@ const sessionKey ctxKey = 0
 // withSession resolves the token in the address to its session.
 func (s *Server) withSession(next http.Handler) http.Handler {
 	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		start := time.Now()
 		token := chi.URLParam(r, "token")
 		if len(token) < 16 || len(token) > 64 {
 			s.fail(w, r, &Error{Status: http.StatusNotFound, Key: "not_found", Msg: "unknown link"})
@@ -96,7 +97,7 @@ func (s *Server) withSession(next http.Handler) http.Handler {
 			return
 		}
 		w.Header().Set("Content-Security-Policy", csp(frameAncestors(st.Def)))
-		ctx := context.WithValue(r.Context(), sessionKey, &request{sess: sess, study: st})
+		ctx := context.WithValue(r.Context(), sessionKey, &request{sess: sess, study: st, start: start})
 		next.ServeHTTP(w, r.WithContext(ctx))
 	})
 }
@@ -105,6 +106,7 @@ func (s *Server) withSession(next http.Handler) http.Handler {
 type request struct {
 	sess  store.Session
 	study *Study
+	start time.Time // when the request reached the session: the server's own clock for overhead
 }
 
 func fromContext(ctx context.Context) *request {

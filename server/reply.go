@@ -36,6 +36,9 @@ type replyAnswer struct {
 	Reply   string `json:"reply"`
 	State   State  `json:"state"`
 	ModelMS int64  `json:"model_ms"` // time the model endpoint took for this turn
+	// ServerMS is the server's own time for the turn, on its clock: from the
+	// request reaching the session to the answer, less the model's time.
+	ServerMS float64 `json:"server_ms"`
 }
 
 // handleReply commits a respondent's reply, then has the model answer it.
@@ -158,7 +161,11 @@ func (s *Server) respond(w http.ResponseWriter, r *http.Request, req *request, t
 // answer sends a stored model turn with the session's state after it.
 func (s *Server) answer(w http.ResponseWriter, r *http.Request, req *request, turns []store.Turn, t store.Turn, modelTime time.Duration, ev *eventWriter) {
 	st := s.state(req, turns, time.Time{})
-	a := replyAnswer{Reply: t.Text, State: st, ModelMS: modelTime.Milliseconds()}
+	overhead := max(0, time.Since(req.start)-modelTime)
+	a := replyAnswer{Reply: t.Text, State: st, ModelMS: modelTime.Milliseconds(), ServerMS: float64(overhead.Microseconds()) / 1000}
+	if modelTime > 0 {
+		s.metrics.overhead.Observe(overhead.Seconds())
+	}
 	if ev != nil {
 		ev.event("done", a)
 		return

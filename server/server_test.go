@@ -307,8 +307,9 @@ func TestReplyStream(t *testing.T) {
 		}
 	}
 	var done struct {
-		Reply string
-		State server.State
+		Reply    string
+		State    server.State
+		ServerMS *float64 `json:"server_ms"`
 	}
 	if err := json.Unmarshal(data[len(data)-1], &done); err != nil {
 		t.Fatal(err)
@@ -318,6 +319,9 @@ func TestReplyStream(t *testing.T) {
 	}
 	if done.State.RepliesUsed != 1 || len(done.State.Messages) != 3 {
 		t.Fatalf("final state: %+v", done.State)
+	}
+	if done.ServerMS == nil || *done.ServerMS < 0 {
+		t.Fatalf("done event: got server_ms %v, want the server's own time per turn", done.ServerMS)
 	}
 }
 

@@ -20,7 +20,8 @@ type Report struct {
 	Seconds     float64              `json:"seconds"`     // wall time of the run
 	Stopped     bool                 `json:"stopped"`     // the maximum time ended the run
 	Steps       map[string]Latencies `json:"steps"`       // per step: successful requests
-	Overhead    Latencies            `json:"overhead"`    // per model turn: latency less the model's own time
+	Overhead    Latencies            `json:"overhead"`    // per model turn: latency less the model's own time, on this client's clock
+	ServerSide  Latencies            `json:"server_side"` // per model turn: the server's own time, on its clock (server_ms)
 	Errors      map[string]int       `json:"errors"`      // "step:kind" (an HTTP status, or a transport failure) → count
 	Arms        map[string]int       `json:"arms"`        // arm code → completed respondents
 	Turns       int                  `json:"turns"`       // model turns received (openings and replies)
@@ -60,6 +61,7 @@ type recorder struct {
 	mu       sync.Mutex
 	steps    map[string][]float64
 	overhead []float64
+	server   []float64
 	errors   map[string]int
 	arms     map[string]int
 	turns    int
@@ -77,10 +79,11 @@ func (r *recorder) took(step string, d time.Duration) {
 	r.mu.Unlock()
 }
 
-func (r *recorder) turn(step string, d, model time.Duration) {
+func (r *recorder) turn(step string, d, model time.Duration, serverMS float64) {
 	r.mu.Lock()
 	r.steps[step] = append(r.steps[step], ms(d))
 	r.overhead = append(r.overhead, ms(max(d-model, 0)))
+	r.server = append(r.server, serverMS)
 	r.turns++
 	r.mu.Unlock()
 }
@@ -102,7 +105,7 @@ func (r *recorder) report(respondents int, took time.Duration, stopped error) *R
 	defer r.mu.Unlock()
 	rep := &Report{Respondents: respondents, Seconds: took.Seconds(), Stopped: stopped != nil,
 		Steps: map[string]Latencies{}, Errors: maps.Clone(r.errors), Arms: maps.Clone(r.arms), Turns: r.turns,
-		Overhead: summarise(slices.Clone(r.overhead))}
+		Overhead: summarise(slices.Clone(r.overhead)), ServerSide: summarise(slices.Clone(r.server))}
 	for step, v := range r.steps {
 		rep.Steps[step] = summarise(slices.Clone(v))
 	}
@@ -127,10 +130,12 @@ func (r *Report) WriteTable(w io.Writer) error {
 		}
 	}
 	row("overhead/turn", r.Overhead)
+	row("server/turn", r.ServerSide)
 	if err := tw.Flush(); err != nil {
 		return err
 	}
-	fmt.Fprintln(w, "\n(overhead/turn = turn latency less the model time the server reports)")
+	fmt.Fprintln(w, "\n(overhead/turn = turn latency less the model time the server reports, on this client's clock;")
+	fmt.Fprintln(w, " server/turn = the server's own time per turn, on its clock, from the request to the answer less the model time)")
 	if len(r.Arms) > 0 {
 		fmt.Fprintln(w, "\narm\tcompleted")
 		for _, a := range slices.Sorted(maps.Keys(r.Arms)) {

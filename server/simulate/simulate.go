@@ -427,14 +427,15 @@ func (r *respondent) stream(ctx context.Context, step, u string, body []byte) (s
 			case "done":
 				took := time.Since(start)
 				var d struct {
-					State   stateJSON `json:"state"`
-					ModelMS int64     `json:"model_ms"`
+					State    stateJSON `json:"state"`
+					ModelMS  int64     `json:"model_ms"`
+					ServerMS float64   `json:"server_ms"`
 				}
 				if err := json.Unmarshal([]byte(data), &d); err != nil {
 					r.rec.fail(step, "bad_event")
 					return stateJSON{}, false
 				}
-				r.rec.turn(step, took, time.Duration(d.ModelMS)*time.Millisecond)
+				r.rec.turn(step, took, time.Duration(d.ModelMS)*time.Millisecond, d.ServerMS)
 				return d.State, true
 			case "error":
 				var e struct{ Rule string }
