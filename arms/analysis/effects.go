@@ -15,6 +15,7 @@ import (
 	"slices"
 	"strconv"
 	"strings"
+	"sync/atomic"
 
 	"gonum.org/v1/gonum/mat"
 
@@ -160,21 +161,46 @@ func Analyze(study *arms.Study, units []Unit, t *Table, spec Spec) (*Report, err
 	rep.N = len(s.y)
 	rep.Join.AnalysedOutcome = len(s.y)
 	rep.StrataFE = s.nStrata > 1
+	// The re-draws run beside the regression: together they keep both
+	// cores busy.
+	type riResult struct {
+		p, obs []float64
+		same   bool
+		err    error
+	}
+	var ri chan riResult
+	var stop atomic.Bool
+	if spec.Permutations > 0 {
+		ri = make(chan riResult, 1)
+		go func() {
+			var r riResult
+			r.p, r.obs, r.same, r.err = s.randomization(d, &stop)
+			ri <- r
+		}()
+	}
 	fit, cols, err := s.fit()
 	if err != nil {
+		if ri != nil {
+			stop.Store(true)
+			<-ri
+		}
 		return nil, err
 	}
 	rep.Regressors = cols
-	est := make([]float64, len(d.treatments))
-	for k := range d.treatments {
-		est[k] = fit.Coef[1+k]
-	}
 	var pri []float64
-	if spec.Permutations > 0 {
-		pri, err = s.randomization(d, est)
-		if err != nil {
-			return nil, err
+	if ri != nil {
+		r := <-ri
+		if r.err != nil {
+			return nil, r.err
 		}
+		if r.same {
+			for k, o := range r.obs {
+				if est := fit.Coef[1+k]; math.Abs(o-est) > 1e-8*math.Max(1, math.Abs(est)) {
+					return nil, fmt.Errorf("randomization inference: the statistic %g disagrees with the regression's estimate %g", o, est)
+				}
+			}
+		}
+		pri = r.p
 		rep.RIStatistic = RIEstimate
 		if spec.Adjust == AdjustLin {
 			rep.RIStatistic = RIResidualMeans
