@@ -45,6 +45,10 @@ func (s *Server) handleEntry(w http.ResponseWriter, r *http.Request) {
 		s.fail(w, r, &Error{Status: http.StatusGone, Key: "study_closed", Msg: "This study is closed and takes no new participants. Thank you for your interest."})
 		return
 	}
+	if errors.Is(err, store.ErrPilotFull) {
+		s.fail(w, r, &Error{Status: http.StatusServiceUnavailable, Key: "study_closed", Msg: "The pilot of this study has all the participants it needs. Thank you for your interest."})
+		return
+	}
 	if err != nil {
 		s.fail(w, r, err)
 		return

@@ -37,6 +37,13 @@ type Config struct {
 	// SyntheticKey, when set, lets a client sending it in the
 	// Trialogue-Synthetic header mark its sessions synthetic. Secret.
 	SyntheticKey string
+	// SecureCookies marks the console's cookie Secure even when requests
+	// arrive over plain HTTP, as behind a TLS-terminating proxy.
+	SecureCookies bool
+	// ConsoleIdle ends console sessions unused for this long (default 30m).
+	ConsoleIdle time.Duration
+	// ConsoleRefresh is how often the live monitor refreshes (default 5s).
+	ConsoleRefresh time.Duration
 }
 
 // Server handles respondents' requests for the studies it was given.
@@ -218,10 +225,11 @@ func (s *Server) Handler() http.Handler {
 		r.Use(s.withSession)
 		r.Get("/", s.handlePage)
 		r.Get("/state", s.handleState)
-		r.With(s.limitReplies).Post("/reply", s.handleReply)
-		r.With(s.limitReplies).Post("/resume", s.handleResume)
+		r.With(s.limitReplies, s.whileOpen).Post("/reply", s.handleReply)
+		r.With(s.limitReplies, s.whileOpen).Post("/resume", s.handleResume)
 		r.Post("/finish", s.handleFinish)
 	})
+	r.Route("/console", s.consoleRoutes)
 	if s.cfg.Demo {
 		r.Get("/demo/host", s.handleDemoHost)
 		r.Get("/demo/done", s.handleDemoDone)
