@@ -321,9 +321,18 @@ func (c *classifier) work() *cvWork {
 		cnt: make([]int, fc), inv: make([]float64, fc), norms: make([]float64, fc), dots: make([]float64, nc)}
 }
 
-// stride is the number of classes rounded up to a multiple of eight: the
-// layout's classes per term, the extra ones never filled nor candidates.
-func (c *classifier) stride() int { return (c.classes + 7) &^ 7 }
+// stride is the layout's classes per term: the number of classes rounded
+// up to 4, 6 or a multiple of 8, the sizes accuracy's loops handle; the
+// extra ones are never filled nor candidates.
+func (c *classifier) stride() int {
+	switch {
+	case c.classes <= 4:
+		return 4
+	case c.classes <= 6:
+		return 6
+	}
+	return (c.classes + 7) &^ 7
+}
 
 // accuracy is the share of documents whose nearest training centroid (by
 // Euclidean distance, as scikit-learn's NearestCentroid) is their own
@@ -387,23 +396,48 @@ func (c *classifier) accuracy(label []int, pred []int, w *cvWork) float64 {
 		cent := w.sums[f*v*nc : (f+1)*v*nc]
 		vals := c.vals[c.start[p]:c.start[p+1]]
 		cols := c.cols[c.start[p]:c.start[p+1]]
-		// Eight classes at a time, in local sums: a sum kept in memory would
-		// make every term wait for the previous term's store.
-		for c0 := 0; c0 < nc; c0 += 8 {
-			var d0, d1, d2, d3, d4, d5, d6, d7 float64
+		// The classes' sums in local variables, eight (or fewer) at a time:
+		// a sum kept in memory would make every term wait for the previous
+		// term's store.
+		switch nc {
+		case 4:
+			var d0, d1, d2, d3 float64
 			for q, col := range cols {
-				x := vals[q]
-				cs := cent[int(col)*nc+c0:][:8]
+				x, cs := vals[q], cent[int(col)*4:][:4]
+				d0 += x * cs[0]
+				d1 += x * cs[1]
+				d2 += x * cs[2]
+				d3 += x * cs[3]
+			}
+			dots[0], dots[1], dots[2], dots[3] = d0, d1, d2, d3
+		case 6:
+			var d0, d1, d2, d3, d4, d5 float64
+			for q, col := range cols {
+				x, cs := vals[q], cent[int(col)*6:][:6]
 				d0 += x * cs[0]
 				d1 += x * cs[1]
 				d2 += x * cs[2]
 				d3 += x * cs[3]
 				d4 += x * cs[4]
 				d5 += x * cs[5]
-				d6 += x * cs[6]
-				d7 += x * cs[7]
 			}
-			copy(dots[c0:c0+8], []float64{d0, d1, d2, d3, d4, d5, d6, d7})
+			dots[0], dots[1], dots[2], dots[3], dots[4], dots[5] = d0, d1, d2, d3, d4, d5
+		default:
+			for c0 := 0; c0 < nc; c0 += 8 {
+				var d0, d1, d2, d3, d4, d5, d6, d7 float64
+				for q, col := range cols {
+					x, cs := vals[q], cent[int(col)*nc+c0:][:8]
+					d0 += x * cs[0]
+					d1 += x * cs[1]
+					d2 += x * cs[2]
+					d3 += x * cs[3]
+					d4 += x * cs[4]
+					d5 += x * cs[5]
+					d6 += x * cs[6]
+					d7 += x * cs[7]
+				}
+				copy(dots[c0:c0+8], []float64{d0, d1, d2, d3, d4, d5, d6, d7})
+			}
 		}
 		best, bestCl := math.Inf(1), -1
 		for cl, dot := range dots[:c.classes] {
