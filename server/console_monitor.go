@@ -337,6 +337,7 @@ func (m *Monitor) texts() map[string]string {
 	}
 	return map[string]string{
 		"phase":         m.Phase,
+		"dropout_after": span(time.Duration(m.DropoutAfterS) * time.Second),
 		"generated":     fmtStored(m.Generated),
 		"entered":       strconv.Itoa(m.Entered),
 		"completed":     strconv.Itoa(m.Completed),
@@ -364,6 +365,7 @@ type monitorPage struct {
 	Cohorts   []store.Cohort
 	ArmHeads  []string
 	RefreshMS int
+	Refresh   string // the refresh interval in words
 	JSONURL   string
 	ChartURL  string
 }
@@ -389,7 +391,7 @@ func (s *Server) handleMonitor(w http.ResponseWriter, r *http.Request) {
 	}
 	base := "/console/studies/" + cs.Def.ID
 	page := monitorPage{consolePage: s.page(r, "Monitor · "+cs.Def.Title, "monitor"), M: m, Cohorts: store.Cohorts,
-		RefreshMS: int(refresh / time.Millisecond), JSONURL: base + "/monitor.json?cohort=" + string(cohort),
+		RefreshMS: int(refresh / time.Millisecond), Refresh: span(refresh), JSONURL: base + "/monitor.json?cohort=" + string(cohort),
 		ChartURL: base + "/entries.svg?cohort=" + string(cohort)}
 	for _, a := range m.Arms {
 		page.ArmHeads = append(page.ArmHeads, a.Arm)

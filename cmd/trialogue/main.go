@@ -37,6 +37,7 @@ Commands:
   trialogue verify (--db PATH --study ID | BUNDLE.tar.gz)
   trialogue bundle --db PATH --study ID --out FILE.tar.gz [--release]
   trialogue close --db PATH --study ID
+  trialogue user add EMAIL --role owner|viewer --db PATH [--password-stdin]   (also: user reset EMAIL, user list)
   trialogue drift --db PATH --study ID [--runs N]
   trialogue effects --db PATH --study ID --outcomes FILE.csv --id COLUMN --outcome COLUMN --control ARM[,ARM] [--adjust none|pre|lin] [--out DIR]
   trialogue arms-map --db PATH --study ID [--permutations N] [--out DIR]
@@ -68,6 +69,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		return runBundle(ctx, args[1:], stdout, stderr)
 	case "close":
 		return runClose(ctx, args[1:], stdout, stderr)
+	case "user":
+		return runUser(ctx, args[1:], os.Stdin, stdout, stderr)
 	case "drift":
 		return runDrift(ctx, args[1:], stdout, stderr)
 	case "effects":

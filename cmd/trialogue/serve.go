@@ -34,6 +34,8 @@ type Config struct {
 	TLSCert, TLSKey string        // PEM files; both set: serve HTTPS
 	Limits          server.Limits // rate limits on entries and replies; TrustProxy is --trust-proxy
 	SyntheticKey    string        // secret, from TRIALOGUE_SYNTHETIC_KEY: lets trialogue simulate mark its sessions
+	SecureCookies   bool          // the console's cookie is Secure even over plain HTTP (behind a TLS proxy)
+	ConsoleRefresh  time.Duration // how often the console's monitor refreshes; 0: every 5s
 }
 
 // Main is the program wired together: tests build one with a temporary
@@ -82,6 +84,7 @@ func (m *Main) ParseFlags(args []string, demo bool, stderr io.Writer) error {
 	fs.Float64Var(&c.Limits.ReplyRate, "reply-rate", c.Limits.ReplyRate, "replies and retries per second per session (0: no limit)")
 	fs.IntVar(&c.Limits.ReplyBurst, "reply-burst", c.Limits.ReplyBurst, "replies and retries a session may send at once")
 	fs.BoolVar(&c.Limits.TrustProxy, "trust-proxy", false, "take client addresses from X-Forwarded-For (only behind a proxy that sets it)")
+	fs.BoolVar(&c.SecureCookies, "secure-cookies", false, "mark the console's cookie Secure over plain HTTP too (behind a TLS-terminating proxy)")
 	if err := fs.Parse(args); err != nil {
 		return err
 	}
@@ -162,7 +165,8 @@ func (m *Main) Run(ctx context.Context) error {
 	}
 	m.Store = st
 	m.Server = server.New(st, assets, server.Config{Logger: m.Logger, Demo: m.Config.Demo,
-		Limits: m.Config.Limits, SyntheticKey: m.Config.SyntheticKey})
+		Limits: m.Config.Limits, SyntheticKey: m.Config.SyntheticKey,
+		SecureCookies: m.Config.SecureCookies, ConsoleRefresh: m.Config.ConsoleRefresh})
 	hostSite, frameSite := server.DemoSites(ln.Addr())
 	for _, d := range defs {
 		if m.Config.Demo {
@@ -219,6 +223,12 @@ func (m *Main) Run(ctx context.Context) error {
 			}
 		}
 		fmt.Fprint(m.Stdout, "\n\n")
+		email, password, err := demoOwner(ctx, m.Store)
+		if err != nil {
+			m.Close()
+			return err
+		}
+		fmt.Fprintf(m.Stdout, "  Researcher console (an owner account of this demo; its password is new at every start):\n    %s/console/login\n    e-mail %s, password %s\n\n", hostSite, email, password)
 	} else {
 		fmt.Fprintf(m.Stdout, "Trialogue serving %d stud(ies) on %s://%s\n\n", len(defs), scheme, ln.Addr())
 	}
