@@ -6,6 +6,7 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"math/bits"
 	"math/rand/v2"
 	"runtime"
 	"slices"
@@ -28,7 +29,11 @@ import (
 // word serves up to four draws of a shuffle.
 type dealer struct {
 	src    rand.PCG
+	spare  uint32 // the high half of the last 64-bit output, when has
+	has    bool
 	blocks []dealBlock
+	perms  [7][]uint8 // perms[k]: every order of 0 … k-1, k bytes each
+	starts [][]int32  // deal's scratch: per block size, where its blocks start
 }
 
 // dealBlock is one block size: the ratio list (each arm, in declared
@@ -38,7 +43,24 @@ type dealBlock struct {
 	ratio []int32
 	ends  []int  // ends[a]: one past arm a's last entry in ratio
 	steps []step // steps[k] draws the swap partner of entry k+1
+	// Blocks of at most tableMax slots are dealt from tables instead (tab
+	// set): the block's first h entries go to a subset of h slots, in
+	// some order, and the others to the remaining slots, in some order;
+	// subsets lists every subset's slots then the rest's, n bytes each.
+	// One uniform draw from [0, n!) picks subset and orders (nsub · h! ·
+	// (n-h)! = n!), each permutation of the slots once.
+	tab     bool
+	h       int
+	nsub    uint32
+	f1, f2  uint32 // h! and (n-h)!
+	fact    uint32 // n!
+	reject  uint32 // 2^32 mod n!
+	subsets []uint8
 }
+
+// tableMax is the largest block dealt from tables: 12! < 2^32, so one
+// 32-bit word picks the block's order.
+const tableMax = 12
 
 // step is one draw of the shuffle: j uniform in [0, i] for entry i. Draws
 // are grouped into batches that one 32-bit word serves: a batch's first
@@ -84,56 +106,146 @@ func newDealer(sc assign.Scheme) *dealer {
 			p := uint32(prod)
 			b.steps[first].fresh, b.steps[first].prod, b.steps[first].reject = true, p, -p%p
 		}
+		if size <= tableMax {
+			b.tab, b.h = true, size
+			if size > 6 {
+				b.h = size / 2
+			}
+			fact := uint32(1)
+			b.f1, b.f2 = 1, 1
+			for i := 2; i <= size; i++ {
+				fact *= uint32(i)
+				if i <= b.h {
+					b.f1 *= uint32(i)
+				}
+				if i <= size-b.h {
+					b.f2 *= uint32(i)
+				}
+			}
+			b.fact, b.reject = fact, -fact%fact
+			for mask := range 1 << size {
+				if bits.OnesCount(uint(mask)) != b.h {
+					continue
+				}
+				b.nsub++
+				for in := 1; in >= 0; in-- {
+					for p := range size {
+						if (mask>>p)&1 == in {
+							b.subsets = append(b.subsets, uint8(p))
+						}
+					}
+				}
+			}
+		}
 		d.blocks = append(d.blocks, b)
 	}
+	for k := range d.perms {
+		d.perms[k] = orders(k)
+	}
+	d.starts = make([][]int32, len(d.blocks))
 	return d
 }
 
-// seed restarts the dealer's stream.
-func (d *dealer) seed(seed1, seed2 uint64) { d.src.Seed(seed1, seed2) }
+// orders lists every order of 0 … k-1, k bytes each.
+func orders(k int) []uint8 {
+	if k == 0 {
+		return nil
+	}
+	var out []uint8
+	var walk func(cur []uint8, used int)
+	walk = func(cur []uint8, used int) {
+		if len(cur) == k {
+			out = append(out, cur...)
+			return
+		}
+		for v := range k {
+			if used&(1<<v) == 0 {
+				walk(append(cur, uint8(v)), used|1<<v)
+			}
+		}
+	}
+	walk(make([]uint8, 0, k), 0)
+	return out
+}
 
-// next deals the next block into dst (which must hold the largest block)
-// and returns the index of its size among the scheme's: the size drawn
-// uniformly, then the block's ratio list in a uniformly random order, by
-// the inside-out Fisher–Yates shuffle, so every block is an exact
-// permutation of the ratio.
+// seed restarts the dealer's stream.
+func (d *dealer) seed(seed1, seed2 uint64) {
+	d.src.Seed(seed1, seed2)
+	d.has = false
+}
+
+// word returns the next 32 uniform bits: each 64-bit output of the
+// generator serves two words, low half first.
+func (d *dealer) word() uint32 {
+	if d.has {
+		d.has = false
+		return d.spare
+	}
+	out := d.src.Uint64()
+	d.spare, d.has = uint32(out>>32), true
+	return uint32(out)
+}
+
+// pick draws the index of a block size, uniformly among the scheme's.
 //
-// Each 64-bit output of the generator is two 32-bit words, low half first.
 // A draw uniform in [0, n) from a word x is the high half of x·n, exact
 // by Lemire's method: x is rejected, and a fresh word taken, when the low
 // half of x·n falls below 2^32 mod n (rare for small n). A batch draws
-// several: successive high halves of x·(i+1), then of the low half times
-// the next range, … are the mixed-radix digits of ⌊x·prod / 2^32⌋, and
+// several: successive high halves of x·r1, then of the low half times r2,
+// … are the mixed-radix digits of ⌊x·prod / 2^32⌋ (prod = r1·r2·…), and
 // the last low half is x·prod mod 2^32, so rejecting x by the batch's
 // threshold makes the digits independent uniform draws.
-func (d *dealer) next(dst []int32) int {
-	out := d.src.Uint64()
-	bi := 0
-	if nb := uint32(len(d.blocks)); nb > 1 {
-		m := uint64(uint32(out)) * uint64(nb)
-		if uint32(m) < nb {
-			for thresh := -nb % nb; uint32(m) < thresh; {
-				m = uint64(uint32(d.src.Uint64())) * uint64(nb)
-			}
-		}
-		bi = int(m >> 32)
+func (d *dealer) pick() int {
+	nb := uint32(len(d.blocks))
+	if nb == 1 {
+		return 0
 	}
+	m := uint64(d.word()) * uint64(nb)
+	if uint32(m) < nb {
+		for thresh := -nb % nb; uint32(m) < thresh; {
+			m = uint64(d.word()) * uint64(nb)
+		}
+	}
+	return int(m >> 32)
+}
+
+// fill deals a block of size index bi into dst: the block's ratio list
+// in a uniformly random order, so every block is an exact permutation of
+// the ratio. Blocks of at most tableMax slots take one draw from [0, n!)
+// whose digits pick a subset and two orders from tables; larger ones are
+// shuffled by the inside-out Fisher–Yates algorithm.
+func (d *dealer) fill(bi int, dst []int32) {
 	b := &d.blocks[bi]
 	ratio := b.ratio
 	dst = dst[:len(ratio)]
+	if b.tab {
+		x := d.word()
+		for x*b.fact < b.reject {
+			x = d.word()
+		}
+		n, h := len(ratio), b.h
+		m := uint64(x) * uint64(b.nsub)
+		sub := b.subsets[int(m>>32)*n:][:n]
+		m = uint64(uint32(m)) * uint64(b.f1)
+		o1 := d.perms[h][int(m>>32)*h:][:h]
+		m = uint64(uint32(m)) * uint64(b.f2)
+		o2 := d.perms[n-h][int(m>>32)*(n-h):][:n-h]
+		for e, p := range o1 {
+			dst[sub[p]] = ratio[e]
+		}
+		rest, tail := sub[h:], ratio[h:]
+		for e, p := range o2 {
+			dst[rest[p]] = tail[e]
+		}
+		return
+	}
 	dst[0] = ratio[0]
-	spare, has := uint32(out>>32), true
 	var x uint32
 	for k, st := range b.steps {
 		if st.fresh {
-			if has {
-				x, has = spare, false
-			} else {
-				out = d.src.Uint64()
-				x, spare, has = uint32(out), uint32(out>>32), true
-			}
+			x = d.word()
 			for x*st.prod < st.reject {
-				x = uint32(d.src.Uint64())
+				x = d.word()
 			}
 		}
 		m := uint64(x) * uint64(st.rng)
@@ -142,6 +254,13 @@ func (d *dealer) next(dst []int32) int {
 		dst[i] = dst[j]
 		dst[j] = ratio[i]
 	}
+}
+
+// next deals the next block into dst (which must hold the largest block)
+// and returns the index of its size among the scheme's.
+func (d *dealer) next(dst []int32) int {
+	bi := d.pick()
+	d.fill(bi, dst)
 	return bi
 }
 
@@ -531,32 +650,29 @@ var errRIStopped = errors.New("randomization inference stopped")
 // analysed respondents to acc[a·(1+dv)] and the sums of their dv values to
 // the entries after it.
 func (d *dealer) deal(seq []int32, st *riStratum, dv int, acc []float64) {
-	// Deal whole blocks; the last may run past need.
-	var nblocks [8]int
-	var many []int
-	if len(d.blocks) > len(nblocks) {
-		many = make([]int, len(d.blocks))
+	// Draw the block sizes first, then deal the blocks of each size
+	// together: the work of a block depends on its size, and blocks of
+	// one size after another keep the processor's branch predictions
+	// right. The last block may run past need.
+	for bi := range d.starts {
+		d.starts[bi] = d.starts[bi][:0]
 	}
 	filled := 0
 	for filled < st.need {
-		bi := d.next(seq[filled:])
+		bi := d.pick()
+		d.starts[bi] = append(d.starts[bi], int32(filled))
 		filled += len(d.blocks[bi].ratio)
-		if many != nil {
-			many[bi]++
-		} else {
-			nblocks[bi]++
+	}
+	for bi, starts := range d.starts {
+		for _, at := range starts {
+			d.fill(bi, seq[at:])
 		}
 	}
 	dz := 1 + dv
 	// Counts: each arm's share of every block dealt, less the slots past
 	// need, corrected by the slots that hold no one or several.
 	for bi, b := range d.blocks {
-		nb := 0
-		if many != nil {
-			nb = many[bi]
-		} else {
-			nb = nblocks[bi]
-		}
+		nb := len(d.starts[bi])
 		if nb == 0 {
 			continue
 		}

@@ -84,33 +84,42 @@ func TestDealerBlocksArePermutationsOfTheRatio(t *testing.T) {
 }
 
 // TestDealerIsUniform checks by chi-square tests (with fixed seeds, so the
-// outcome is fixed) that blocks of four distinct arms take each of the 24
-// orders equally often, that in blocks of 24 (six batches of draws) every
+// outcome is fixed) that blocks of four and of seven distinct arms take
+// each of their orders equally often, that in blocks of 24 (six batches of draws) every
 // arm is equally likely at every position, and that block sizes are drawn
 // equally often.
 func TestDealerIsUniform(t *testing.T) {
-	t.Run("OKOrdersOfFour", func(t *testing.T) {
-		sc := assign.Scheme{Arms: []assign.Ratio{{Arm: "a", Weight: 1}, {Arm: "b", Weight: 1}, {Arm: "c", Weight: 1}, {Arm: "d", Weight: 1}}, Blocks: []int{4}}
-		d := newDealer(sc)
-		d.seed(1, 2)
-		buf := make([]int32, 4)
-		const n = 48000
-		freq := map[[4]int32]float64{}
-		for range n {
-			d.next(buf)
-			freq[[4]int32(buf)]++
-		}
-		if len(freq) != 24 {
-			t.Fatalf("got %d distinct orders, want 24", len(freq))
-		}
-		stat := 0.0
-		for _, f := range freq {
-			stat += (f - n/24) * (f - n/24) / (n / 24)
-		}
-		if p := (distuv.ChiSquared{K: 23}).Survival(stat); p < 1e-3 {
-			t.Errorf("orders of four: chi-square %.1f on 23 df, p = %.2g; want uniform", stat, p)
-		}
-	})
+	// Blocks of four come from one table of orders; blocks of seven from a
+	// table of subsets and two of orders.
+	for _, size := range []int{4, 7} {
+		t.Run(fmt.Sprintf("OKOrdersOf%d", size), func(t *testing.T) {
+			var ar []assign.Ratio
+			orders := 1
+			for a := range size {
+				ar = append(ar, assign.Ratio{Arm: fmt.Sprint(a), Weight: 1})
+				orders *= a + 1
+			}
+			d := newDealer(assign.Scheme{Arms: ar, Blocks: []int{size}})
+			d.seed(1, 2)
+			buf := make([]int32, size)
+			n := 40 * orders
+			freq := map[string]float64{}
+			for range n {
+				d.next(buf)
+				freq[fmt.Sprint(buf)]++
+			}
+			if len(freq) != orders {
+				t.Fatalf("got %d distinct orders, want %d", len(freq), orders)
+			}
+			stat := 0.0
+			for _, f := range freq {
+				stat += (f - 40) * (f - 40) / 40
+			}
+			if p := (distuv.ChiSquared{K: float64(orders - 1)}).Survival(stat); p < 1e-3 {
+				t.Errorf("orders of %d: chi-square %.1f on %d df, p = %.2g; want uniform", size, stat, orders-1, p)
+			}
+		})
+	}
 	t.Run("OKPositionsOfTwentyFour", func(t *testing.T) {
 		var ar []assign.Ratio
 		for a := range 24 {
@@ -157,16 +166,17 @@ func TestDealerIsUniform(t *testing.T) {
 	})
 }
 
-// TestDealStratum holds the re-draw's hot path to the dealer's blocks: the
-// arms it writes, slot by slot, are the dealer's blocks one after another,
-// every complete block an exact permutation of the ratio; and the per-arm
-// counts and sums it returns are those of the slots dealt to each arm,
-// with empty and doubly occupied slots counted as they are.
+// TestDealStratum checks the re-draw's hot path: the blocks it deals tile
+// the stratum's slots from the first, each an exact permutation of the
+// ratio (the last one too, though it may run past the respondents); and
+// the per-arm counts and sums it returns are those of the slots dealt to
+// each arm, with empty and doubly occupied slots counted as they are.
 func TestDealStratum(t *testing.T) {
 	rng := rand.New(rand.NewPCG(5, 6))
 	for name, sc := range dealSchemes(t) {
 		for _, dv := range []int{1, 2, 3} {
 			t.Run(fmt.Sprintf("%s/dv%d", name, dv), func(t *testing.T) {
+				d := newDealer(sc)
 				for trial := range 5 {
 					need := 1 + rng.IntN(700)
 					st := &riStratum{need: need, v: make([]float64, need*dv)}
@@ -189,36 +199,40 @@ func TestDealStratum(t *testing.T) {
 							}
 						}
 					}
-					d := newDealer(sc)
 					seq := make([]int32, need+d.maxBlock())
 					acc := make([]float64, len(sc.Arms)*(1+dv))
 					d.seed(uint64(trial), 77)
 					d.deal(seq, st, dv, acc)
 
-					ref := newDealer(sc)
-					ref.seed(uint64(trial), 77)
-					buf := make([]int32, ref.maxBlock())
+					size := map[int32]int{}
+					var starts []int32
+					for bi, at := range d.starts {
+						for _, s := range at {
+							size[s] = sc.Blocks[bi]
+							starts = append(starts, s)
+						}
+					}
+					slices.Sort(starts)
+					end := int32(0)
+					for _, s := range starts {
+						if s != end {
+							t.Fatalf("trial %d: a block starts at slot %d, want %d", trial, s, end)
+						}
+						end += int32(size[s])
+						if err := checkBlock(sc, seq[s:end]); err != nil {
+							t.Fatalf("trial %d, block at slot %d: %v", trial, s, err)
+						}
+					}
+					if int(end) < need || int(end)-size[starts[len(starts)-1]] >= need {
+						t.Fatalf("trial %d: blocks cover %d slots for %d", trial, end, need)
+					}
 					want := make([]float64, len(acc))
-					for slot := 0; slot < need; {
-						bi := ref.next(buf)
-						block := buf[:sc.Blocks[bi]]
-						if err := checkBlock(sc, block); err != nil {
-							t.Fatal(err)
+					for slot, a := range seq[:need] {
+						w := want[int(a)*(1+dv):][:1+dv]
+						w[0] += held[slot]
+						for j := range dv {
+							w[1+j] += st.v[slot*dv+j]
 						}
-						for p, a := range block {
-							if slot+p >= need {
-								break
-							}
-							if seq[slot+p] != a {
-								t.Fatalf("trial %d slot %d: deal wrote arm %d, the dealer's block has %d", trial, slot+p, seq[slot+p], a)
-							}
-							w := want[int(a)*(1+dv):][:1+dv]
-							w[0] += held[slot+p]
-							for j := range dv {
-								w[1+j] += st.v[(slot+p)*dv+j]
-							}
-						}
-						slot += len(block)
 					}
 					for i := range acc {
 						if math.Abs(acc[i]-want[i]) > 1e-9*math.Max(1, math.Abs(want[i])) {
