@@ -74,6 +74,7 @@ func (s *Server) consoleRoutes(r chi.Router) {
 			r.Get("/entries.svg", s.handleEntriesSVG)
 			r.Get("/sessions", s.handleTranscripts)
 			r.Get("/sessions/{session}", s.handleTranscript)
+			r.Get("/export.zip", s.handleExport)
 			r.Group(func(r chi.Router) {
 				r.Use(s.requireOwner)
 				r.Post("/phase", s.handlePhase)

@@ -1,7 +1,9 @@
 package server_test
 
 import (
+	"archive/zip"
 	"context"
+	"encoding/csv"
 	"encoding/json"
 	"encoding/xml"
 	"fmt"
@@ -694,7 +696,9 @@ func TestConsoleTranscripts(t *testing.T) {
 		t.Fatal(a.Error)
 	}
 	const injected = `<script>document.title="owned"</script><img src=x onerror="alert(1)"> & more`
-	if a := f.call("POST", "/c/"+tok+"/reply", reply(injected, "x1")); a.Status != 200 {
+	// Sent with the typing measures of a pasted reply.
+	typed := map[string]any{"text": injected, "client_id": "x1", "typing": map[string]int{"typing_ms": 3000, "keystrokes": 2, "pastes": 1, "hidden_count": 1}}
+	if a := f.call("POST", "/c/"+tok+"/reply", typed); a.Status != 200 {
 		t.Fatalf("reply: %d %s", a.Status, a.Error)
 	}
 	f.enter("T-2", "right")
@@ -713,12 +717,21 @@ func TestConsoleTranscripts(t *testing.T) {
 			t.Errorf("search: got a list without session %d alone", id)
 		}
 	})
-	for _, c := range []struct{ name, query string }{{"ErrYesNo", "?completed=maybe"}, {"ErrArm", "?arm=nothing"}, {"ErrPage", "?page=0"}} {
+	t.Run("OKFlagFilterAndChips", func(t *testing.T) {
+		res, body := owner.get(study + "/sessions?flag=pasted")
+		mustStatus(t, res, body, http.StatusOK)
+		if !strings.Contains(body, "Sessions 1–1 of 1.") || !regexp.MustCompile(`<span class="chip chip-flag" title="reply 1: 1 paste[^"]*">pasted</span>`).MatchString(body) {
+			t.Errorf("flag filter: got a list without session %d alone with its pasted chip", id)
+		}
+		res, body = owner.get(study + "/sessions?flag=refused")
+		if !strings.Contains(body, "No session matches.") {
+			t.Error("flag filter: a flag no session has still lists sessions")
+		}
+	})
+	for _, c := range []struct{ name, query string }{{"ErrYesNo", "?completed=maybe"}, {"ErrArm", "?arm=nothing"}, {"ErrPage", "?page=0"}, {"ErrFlag", "?flag=rude"}} {
 		t.Run(c.name, func(t *testing.T) {
 			res, body := owner.get(study + "/sessions" + c.query)
-			if res.StatusCode != http.StatusBadRequest && res.StatusCode != http.StatusUnprocessableEntity {
-				t.Errorf("got %d, want 400 or 422; %.200s", res.StatusCode, body)
-			}
+			mustStatus(t, res, body, http.StatusBadRequest)
 		})
 	}
 	t.Run("OKTextIsText", func(t *testing.T) {
@@ -730,7 +743,8 @@ func TestConsoleTranscripts(t *testing.T) {
 		if !strings.Contains(body, "&lt;script&gt;document.title=&#34;owned&#34;&lt;/script&gt;&lt;img src=x onerror=&#34;alert(1)&#34;&gt; &amp; more") {
 			t.Error("the reply is not on the page as escaped text")
 		}
-		for _, want := range []string{"Model reported", "Request SHA-256", "scripted", "turn 1"} {
+		for _, want := range []string{"Model reported", "Request SHA-256", "scripted", "turn 1", "typed in 3000 ms, 2 keystrokes, 1 paste, page hidden 1 time",
+			`<li><span class="chip chip-flag">pasted</span> reply 1: 1 paste`} {
 			if !strings.Contains(body, want) {
 				t.Errorf("the transcript lacks %q", want)
 			}
@@ -763,5 +777,77 @@ func TestConsoleTranscripts(t *testing.T) {
 		if !strings.Contains(body, "Sessions 1–1 of 1.") || !strings.Contains(body, "chip-excluded") {
 			t.Error("the excluded filter does not list the session with its chip")
 		}
+	})
+}
+
+// TestConsoleExport: owners and viewers download the export as a zip
+// archive whose CSV files parse (RFC 4180, read with encoding/csv) with a
+// row per session; pilot sessions only when asked for.
+func TestConsoleExport(t *testing.T) {
+	f, _ := consoleFixture(t, server.Config{})
+	viewer := newBrowserish(t, f.http.URL, nil)
+	viewer.signIn(viewerEmail)
+	for _, rid := range []string{"E-1", "E-2", "E-3"} {
+		f.enter(rid, "left")
+	}
+	download := func(query string) (*zip.Reader, *http.Response) {
+		t.Helper()
+		res, body := viewer.get("/console/studies/harrow-console/export.zip" + query)
+		mustStatus(t, res, body, http.StatusOK)
+		zr, err := zip.NewReader(strings.NewReader(body), int64(len(body)))
+		if err != nil {
+			t.Fatalf("the download is not a zip archive: %v", err)
+		}
+		return zr, res
+	}
+	rows := func(zr *zip.Reader, name string) [][]string {
+		t.Helper()
+		for _, zf := range zr.File {
+			if strings.HasSuffix(zf.Name, "/"+name) {
+				rc, err := zf.Open()
+				if err != nil {
+					t.Fatal(err)
+				}
+				defer rc.Close()
+				recs, err := csv.NewReader(rc).ReadAll()
+				if err != nil {
+					t.Fatalf("%s does not parse as CSV: %v", name, err)
+				}
+				return recs
+			}
+		}
+		t.Fatalf("the archive has no %s", name)
+		return nil
+	}
+	t.Run("OKWithPilot", func(t *testing.T) {
+		zr, res := download("?pilot=1")
+		// RFC 6266: a download with a file name.
+		if cd := res.Header.Get("Content-Disposition"); !regexp.MustCompile(`^attachment; filename="harrow-console-export-\d{8}T\d{6}Z\.zip"$`).MatchString(cd) {
+			t.Errorf("got Content-Disposition %q, want an attachment named after the study", cd)
+		}
+		var names []string
+		for _, zf := range zr.File {
+			names = append(names, zf.Name[strings.Index(zf.Name, "/")+1:])
+		}
+		if strings.Join(names, " ") != "sessions.csv turns.csv turns.jsonl codebook.md" {
+			t.Errorf("got files %v, want sessions.csv turns.csv turns.jsonl codebook.md", names)
+		}
+		if got := rows(zr, "sessions.csv"); len(got) != 4 {
+			t.Errorf("got %d rows in sessions.csv, want a header and 3 sessions", len(got))
+		}
+	})
+	t.Run("OKPilotLeftOut", func(t *testing.T) {
+		zr, _ := download("")
+		if got := rows(zr, "sessions.csv"); len(got) != 1 {
+			t.Errorf("got %d rows, want the header alone: pilot sessions are left out unless asked for", len(got))
+		}
+	})
+	t.Run("ErrOption", func(t *testing.T) {
+		res, body := viewer.get("/console/studies/harrow-console/export.zip?release=yes")
+		mustStatus(t, res, body, http.StatusBadRequest)
+	})
+	t.Run("ErrUnknownStudy", func(t *testing.T) {
+		res, body := viewer.get("/console/studies/no-such-study/export.zip")
+		mustStatus(t, res, body, http.StatusNotFound)
 	})
 }

@@ -4,12 +4,14 @@ import (
 	"fmt"
 	"net/http"
 	"net/url"
+	"slices"
 	"sort"
 	"strconv"
 	"strings"
 
 	"github.com/go-chi/chi/v5"
 
+	"trialogue/arms/flags"
 	"trialogue/store"
 )
 
@@ -20,8 +22,11 @@ const transcriptsPerPage = 50
 type transcriptsPage struct {
 	consolePage
 	Cohort, Arm, Completed, Reviewed, Excluded, Search string
+	Flag                                               string
 	Cohorts                                            []store.Cohort
 	Arms                                               []string
+	FlagCodes                                          []string
+	Legend                                             []flags.Definition
 	Rows                                               []transcriptRow
 	Total                                              int
 	From, To                                           int
@@ -39,11 +44,12 @@ type transcriptRow struct {
 	Finished              bool
 	Reviewed, Excluded    bool
 	Reason                string
+	Flags                 []flags.Flag
 }
 
 // handleTranscripts lists a study's sessions with filters and text search.
 //
-// GET /console/studies/{study}/sessions[?cohort=&arm=&completed=yes|no&reviewed=yes|no&excluded=yes|no&q=TEXT&page=N]
+// GET /console/studies/{study}/sessions[?cohort=&arm=&completed=yes|no&reviewed=yes|no&excluded=yes|no&flag=CODE&q=TEXT&page=N]
 func (s *Server) handleTranscripts(w http.ResponseWriter, r *http.Request) {
 	cs := consoleStudyOf(r.Context())
 	q := r.URL.Query()
@@ -69,29 +75,53 @@ func (s *Server) handleTranscripts(w http.ResponseWriter, r *http.Request) {
 		s.consoleFail(w, r, &Error{Status: http.StatusBadRequest, Msg: "Search for at most 200 characters."})
 		return
 	}
+	for _, k := range []string{"completed", "reviewed", "excluded"} {
+		if v := q.Get(k); v != "" && v != "yes" && v != "no" {
+			s.consoleFail(w, r, &Error{Status: http.StatusBadRequest, Msg: fmt.Sprintf("%s must be yes, no or empty, not %q.", k, v)})
+			return
+		}
+	}
+	flag := q.Get("flag")
+	if flag != "" && !slices.Contains(flags.Codes, flag) {
+		s.consoleFail(w, r, &Error{Status: http.StatusBadRequest, Msg: fmt.Sprintf("%q is not a flag: use one of %s.", flag, strings.Join(flags.Codes, ", "))})
+		return
+	}
 	f := store.SessionFilter{Cohort: cohort, Arm: arm, Completed: q.Get("completed"), Reviewed: q.Get("reviewed"),
 		Excluded: q.Get("excluded"), Search: search, Limit: transcriptsPerPage, Offset: (pageNo - 1) * transcriptsPerPage}
+	found, err := s.store.Flags(r.Context(), cs.Def, cs.Def.ID)
+	if err != nil {
+		s.consoleFail(w, r, err)
+		return
+	}
+	if flag != "" {
+		f.IDs = []int64{}
+		for id, fl := range found {
+			if slices.ContainsFunc(fl, func(x flags.Flag) bool { return x.Code == flag }) {
+				f.IDs = append(f.IDs, id)
+			}
+		}
+	}
 	rows, total, err := s.store.ListSessions(r.Context(), cs.Def.ID, f)
 	if err != nil {
 		s.consoleFail(w, r, err)
 		return
 	}
 	page := transcriptsPage{consolePage: s.page(r, "Transcripts · "+cs.Def.Title, "sessions"), Cohort: string(cohort), Arm: arm,
-		Completed: f.Completed, Reviewed: f.Reviewed, Excluded: f.Excluded, Search: search, Cohorts: store.Cohorts,
-		Arms: cs.Def.ArmOrder, Total: total}
+		Completed: f.Completed, Reviewed: f.Reviewed, Excluded: f.Excluded, Search: search, Flag: flag, Cohorts: store.Cohorts,
+		Arms: cs.Def.ArmOrder, FlagCodes: flags.Codes, Legend: flags.Describe(cs.Def), Total: total}
 	base := "/console/studies/" + cs.Def.ID + "/sessions/"
 	for _, row := range rows {
 		page.Rows = append(page.Rows, transcriptRow{ID: row.ID, Link: base + strconv.FormatInt(row.ID, 10),
 			Entered: fmtTime(row.CreatedAt), LastActivity: fmtTime(row.LastActivity), Arm: row.Arm, Code: row.ArmCode,
 			Stratum: row.Stratum, Cohort: cohortName(row), Replies: row.Replies, Finished: row.Finished(),
-			Reviewed: row.Review.Reviewed, Excluded: row.Review.Excluded, Reason: row.Review.Reason})
+			Reviewed: row.Review.Reviewed, Excluded: row.Review.Excluded, Reason: row.Review.Reason, Flags: found[row.ID]})
 	}
 	if len(rows) > 0 {
 		page.From, page.To = f.Offset+1, f.Offset+len(rows)
 	}
 	link := func(n int) string {
 		v := url.Values{}
-		for _, k := range []string{"cohort", "arm", "completed", "reviewed", "excluded", "q"} {
+		for _, k := range []string{"cohort", "arm", "completed", "reviewed", "excluded", "flag", "q"} {
 			if x := q.Get(k); x != "" {
 				v.Set(k, x)
 			}
@@ -134,6 +164,7 @@ type transcriptPage struct {
 	Entered, Finished string
 	Turns             []turnView
 	Failures          []failureView
+	Flags             []flags.Flag
 	Review            reviewView
 	CanChange         bool
 	Action            string // the review form's address
@@ -192,7 +223,7 @@ func (s *Server) handleTranscript(w http.ResponseWriter, r *http.Request) {
 		s.consoleFail(w, r, err)
 		return
 	}
-	typing, err := s.store.TypingOf(ctx, id)
+	found, err := s.store.Flags(ctx, cs.Def, cs.Def.ID)
 	if err != nil {
 		s.consoleFail(w, r, err)
 		return
@@ -206,7 +237,7 @@ func (s *Server) handleTranscript(w http.ResponseWriter, r *http.Request) {
 	page := transcriptPage{consolePage: s.page(r, fmt.Sprintf("Session %d · %s", id, cs.Def.Title), "sessions"),
 		ID: id, RID: row.RID, Arm: row.Arm, Code: row.ArmCode, Stratum: row.Stratum, Cohort: cohortName(row),
 		Language: row.Language, Version: row.Version, StudyHash: row.StudyHash, Entered: fmtTime(row.CreatedAt),
-		Finished: fmtTime(row.FinishedAt), CanChange: u.CanChange(),
+		Finished: fmtTime(row.FinishedAt), CanChange: u.CanChange(), Flags: found[id],
 		Action: fmt.Sprintf("/console/studies/%s/sessions/%d/review", cs.Def.ID, id)}
 	if a := cs.Def.Arms[row.Arm]; a != nil {
 		page.Kind = a.Kind
@@ -228,8 +259,8 @@ func (s *Server) handleTranscript(w http.ResponseWriter, r *http.Request) {
 		if v.Model {
 			v.Who = "Model"
 		}
-		if ty, ok := typing[t.Index]; ok {
-			v.Typing = typingText(ty)
+		if t.Typing != nil {
+			v.Typing = typingText(*t.Typing)
 		}
 		page.Turns = append(page.Turns, v)
 	}
@@ -241,22 +272,10 @@ func (s *Server) handleTranscript(w http.ResponseWriter, r *http.Request) {
 	s.renderConsole(w, r, http.StatusOK, "console_session", page)
 }
 
-// typingText writes the typing measures of a reply, or "" if none were sent.
-func typingText(t store.Typing) string {
-	var parts []string
-	if t.TypingMS != nil {
-		parts = append(parts, fmt.Sprintf("typed in %d ms", *t.TypingMS))
-	}
-	if t.Keystrokes != nil {
-		parts = append(parts, plural(int(*t.Keystrokes), "keystroke"))
-	}
-	if t.Pastes != nil {
-		parts = append(parts, plural(int(*t.Pastes), "paste"))
-	}
-	if t.Hidden != nil {
-		parts = append(parts, fmt.Sprintf("tab hidden %s", plural(int(*t.Hidden), "time")))
-	}
-	return strings.Join(parts, ", ")
+// typingText writes the typing measures of a reply.
+func typingText(t flags.Typing) string {
+	return fmt.Sprintf("typed in %d ms, %s, %s, page hidden %s", t.TypingMS, plural(int(t.Keystrokes), "keystroke"),
+		plural(int(t.Pastes), "paste"), plural(int(t.HiddenCount), "time"))
 }
 
 // handleReview records a reviewer's decision on a session.

@@ -318,43 +318,6 @@ func scanSessionRow(rows *sql.Rows) (SessionRow, error) {
 	return r, nil
 }
 
-// Typing is how the respondent page measured the writing of one reply;
-// nil fields were not measured.
-type Typing struct {
-	TypingMS   *int64 // first keystroke to send
-	Keystrokes *int64
-	Pastes     *int64
-	Hidden     *int64 // times the tab was hidden while writing
-}
-
-// TypingOf returns the typing measures of a session's replies, by turn index.
-func (s *Store) TypingOf(ctx context.Context, session int64) (map[int]Typing, error) {
-	rows, err := s.rs.QueryContext(ctx, `SELECT idx, typing_ms, keystrokes, pastes, hidden_count FROM turns WHERE session_id = ? AND role = 'respondent' ORDER BY idx`, session)
-	if err != nil {
-		return nil, fmt.Errorf("typing of session %d: %w", session, err)
-	}
-	defer rows.Close()
-	out := map[int]Typing{}
-	for rows.Next() {
-		var idx int
-		var a, b, c, d sql.NullInt64
-		if err := rows.Scan(&idx, &a, &b, &c, &d); err != nil {
-			return nil, fmt.Errorf("typing of session %d: %w", session, err)
-		}
-		ptr := func(v sql.NullInt64) *int64 {
-			if !v.Valid {
-				return nil
-			}
-			return &v.Int64
-		}
-		out[idx] = Typing{TypingMS: ptr(a), Keystrokes: ptr(b), Pastes: ptr(c), Hidden: ptr(d)}
-	}
-	if err := rows.Err(); err != nil {
-		return nil, fmt.Errorf("typing of session %d: %w", session, err)
-	}
-	return out, nil
-}
-
 // Failure is a model call that failed after every retry.
 type Failure struct {
 	At       time.Time

@@ -1,8 +1,10 @@
 package main
 
 import (
+	"archive/zip"
 	"bytes"
 	"context"
+	"encoding/csv"
 	"fmt"
 	"os"
 	"path/filepath"
@@ -11,6 +13,7 @@ import (
 	"testing"
 	"time"
 
+	"github.com/chromedp/cdproto/browser"
 	"github.com/chromedp/chromedp"
 
 	"trialogue/store"
@@ -216,11 +219,12 @@ func TestBrowserConsole(t *testing.T) {
 	c.do("POST", "/c/"+token+"/resume", "", nil)
 	c.do("GET", "/c/"+token+"/state", "", &st)
 	for i := st.RepliesUsed; i < st.RepliesMin; i++ {
-		text := fmt.Sprintf("Reply number %d about the gorge", i)
+		body := fmt.Sprintf(`{"text":"Reply number %d about the gorge","client_id":"b%d"}`, i, i)
 		if i == 0 {
-			text = consoleInjection
+			// Pasted in, as the page's typing measures say: a flagged reply.
+			body = fmt.Sprintf(`{"text":%q,"client_id":"b0","typing":{"typing_ms":2500,"keystrokes":1,"pastes":1,"hidden_count":0}}`, consoleInjection)
 		}
-		if status := c.do("POST", "/c/"+token+"/reply", fmt.Sprintf(`{"text":%q,"client_id":"b%d"}`, text, i), nil); status != 200 {
+		if status := c.do("POST", "/c/"+token+"/reply", body, nil); status != 200 {
 			t.Fatalf("reply %d: got status %d", i, status)
 		}
 	}
@@ -262,6 +266,10 @@ func TestBrowserConsole(t *testing.T) {
 	if n := e.eval(t, `String(document.querySelectorAll("#turns script, #turns img").length)`); n != "0" {
 		t.Errorf("got %s script or img elements inside the transcript, want 0", n)
 	}
+	flagged := e.eval(t, `Array.prototype.map.call(document.querySelectorAll("#flags li"), function (li) { return li.textContent; }).join("\n")`)
+	if !regexp.MustCompile(`(?m)^pasted reply 1: 1 paste`).MatchString(flagged) {
+		t.Errorf("got flags %q, want the pasted reply flagged with its reason", flagged)
+	}
 	e.audit(t, "transcript")
 
 	if err := chromedp.Do(tab, chromedp.Click(chromedp.ID("mark-reviewed")), chromedp.WaitVisible(chromedp.CSS("#review-state .chip-reviewed"))); err != nil {
@@ -282,4 +290,59 @@ func TestBrowserConsole(t *testing.T) {
 	e.wait(t, `document.getElementById("checklist") !== null`)
 	e.audit(t, "study overview")
 	shoot(t, tab, shots, "console-study.png")
+
+	// The export, downloaded as the browser downloads it, with the pilot
+	// sessions (the study is in draft).
+	downloads := filepath.Join(dir, "downloads")
+	if _, err := chromedp.CallBrowser(tab, browser.SetDownloadBehavior, browser.SetDownloadBehaviorParams{
+		Behavior: browser.SetDownloadBehaviorBehaviorAllow, DownloadPath: downloads}); err != nil {
+		t.Fatalf("allow downloads: %v", err)
+	}
+	if err := chromedp.Do(tab, chromedp.Click(chromedp.CSS(`input[name="pilot"]`)), chromedp.Click(chromedp.ID("export"))); err != nil {
+		t.Fatalf("download the export: %v", err)
+	}
+	zipPath := waitForFile(t, ctx, downloads, ".zip")
+	zr, err := zip.OpenReader(zipPath)
+	if err != nil {
+		t.Fatalf("the download is not a zip archive: %v", err)
+	}
+	defer zr.Close()
+	for _, zf := range zr.File {
+		if !strings.HasSuffix(zf.Name, "/sessions.csv") {
+			continue
+		}
+		rc, err := zf.Open()
+		if err != nil {
+			t.Fatal(err)
+		}
+		recs, err := csv.NewReader(rc).ReadAll()
+		rc.Close()
+		if err != nil {
+			t.Fatalf("sessions.csv: %v", err)
+		}
+		if len(recs) != entered+1 {
+			t.Errorf("got %d rows in sessions.csv, want a header and %d sessions", len(recs), entered)
+		}
+		return
+	}
+	t.Errorf("the export %s has no sessions.csv", filepath.Base(zipPath))
+}
+
+// waitForFile waits until dir holds a finished file whose name ends in
+// suffix (Chromium writes a .crdownload file first), and returns its path.
+func waitForFile(t *testing.T, ctx context.Context, dir, suffix string) string {
+	t.Helper()
+	for {
+		entries, _ := os.ReadDir(dir)
+		for _, en := range entries {
+			if strings.HasSuffix(en.Name(), suffix) {
+				return filepath.Join(dir, en.Name())
+			}
+		}
+		select {
+		case <-ctx.Done():
+			t.Fatalf("no %s file appeared in %s: %v", suffix, dir, ctx.Err())
+		case <-time.After(50 * time.Millisecond):
+		}
+	}
 }
