@@ -346,3 +346,55 @@ func waitForFile(t *testing.T, ctx context.Context, dir, suffix string) string {
 		}
 	}
 }
+
+// TestServeRefusesChangedLiveStudy: once a study is live, starting the
+// server with a file that changes its prompts fails with the reason and
+// registers nothing; the unchanged file still serves.
+func TestServeRefusesChangedLiveStudy(t *testing.T) {
+	ctx := context.Background()
+	dir := t.TempDir()
+	db := filepath.Join(dir, "live.db")
+	file := fastDemo(t)
+	m := &Main{}
+	m.Config = Config{Addr: "127.0.0.1:0", DB: db, Studies: []string{file}, Synchronous: "FULL", LogFormat: "text", ShutdownTimeout: 5 * time.Second}
+	if err := m.Run(ctx); err != nil {
+		t.Fatal(err)
+	}
+	for _, c := range []store.PhaseChange{{Study: "quillhaven-cable-car", To: store.PhasePilot}, {Study: "quillhaven-cable-car", To: store.PhaseLive, Version: 1}} {
+		if err := m.Store.ChangePhase(ctx, c); err != nil {
+			closeMain(t, m)
+			t.Fatal(err)
+		}
+	}
+	closeMain(t, m)
+	src, err := os.ReadFile(file)
+	if err != nil {
+		t.Fatal(err)
+	}
+	changed := filepath.Join(dir, "changed.yaml")
+	if err := os.WriteFile(changed, bytes.Replace(src, []byte("politely and with facts"), []byte("forcefully"), 1), 0o600); err != nil {
+		t.Fatal(err)
+	}
+	t.Run("ErrChangedPrompt", func(t *testing.T) {
+		code, out := runCmd(t, "serve", "--addr", "127.0.0.1:0", "--db", db, "--study", changed)
+		if code != exitFail || !strings.Contains(out, "went live with version 1") || !strings.Contains(out, "arms.debate.system: changed") {
+			t.Fatalf("got exit %d: %s; want 1 and the frozen change named", code, out)
+		}
+		st, err := store.Open(ctx, db, store.Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer st.Close()
+		if v, err := st.Versions(ctx, "quillhaven-cable-car"); err != nil || len(v) != 1 {
+			t.Errorf("got %d versions, %v; want 1: the refused file registered nothing", len(v), err)
+		}
+	})
+	t.Run("OKUnchangedFile", func(t *testing.T) {
+		m := &Main{}
+		m.Config = Config{Addr: "127.0.0.1:0", DB: db, Studies: []string{file}, Synchronous: "FULL", LogFormat: "text", ShutdownTimeout: 5 * time.Second}
+		if err := m.Run(ctx); err != nil {
+			t.Fatal(err)
+		}
+		closeMain(t, m)
+	})
+}
