@@ -26,7 +26,8 @@ import (
 // ChaCha8 stream of package assign that fixes the study's own sequence:
 // any uniform draws give re-draws from the same distribution. A dealer
 // allocates nothing per block and spends little randomness: one 32-bit
-// word serves up to four draws of a shuffle.
+// word orders a whole block of up to 12 slots, or serves four draws of a
+// larger block's shuffle.
 type dealer struct {
 	src    rand.PCG
 	spare  uint32 // the high half of the last 64-bit output, when has
@@ -73,9 +74,9 @@ type step struct {
 	reject uint32
 }
 
-// batchSteps bounds the steps of a batch. Every block size then takes
-// fresh words at the same steps, which keeps the processor's branch
-// predictions right whatever size was drawn.
+// batchSteps bounds the steps of a batch: a batch's draws are a chain of
+// dependent multiplications, and short chains let the processor overlap
+// them.
 const batchSteps = 4
 
 // newDealer prepares a dealer for the scheme, which must be valid.
