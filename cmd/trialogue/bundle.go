@@ -21,24 +21,16 @@ func runBundle(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	study := fs.String("study", "", "study `id`")
 	out := fs.String("out", "", "bundle `file` to write (.tar.gz)")
 	release := fs.Bool("release", false, "a shareable copy: respondent ids removed, personal details in text masked")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	if ok, code := parseFlags(fs, args); !ok {
+		return code
 	}
 	if *db == "" || *study == "" || *out == "" || fs.NArg() != 0 {
 		fmt.Fprintln(stderr, "usage: trialogue bundle --db PATH --study ID --out FILE.tar.gz [--release]")
 		return exitUsage
 	}
-	if _, err := os.Stat(*db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
-		return exitUsage
-	}
-	st, err := store.Open(ctx, *db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
+	st, code := openDB(ctx, *db, stderr)
+	if st == nil {
+		return code
 	}
 	defer st.Close()
 	if _, err := st.Phase(ctx, *study); err != nil {
@@ -80,24 +72,16 @@ func runClose(ctx context.Context, args []string, stdout, stderr io.Writer) int 
 	fs.SetOutput(stderr)
 	db := fs.String("db", "", "SQLite database `file`")
 	study := fs.String("study", "", "study `id`")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	if ok, code := parseFlags(fs, args); !ok {
+		return code
 	}
 	if *db == "" || *study == "" || fs.NArg() != 0 {
 		fmt.Fprintln(stderr, "usage: trialogue close --db PATH --study ID")
 		return exitUsage
 	}
-	if _, err := os.Stat(*db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
-		return exitUsage
-	}
-	st, err := store.Open(ctx, *db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
+	st, code := openDB(ctx, *db, stderr)
+	if st == nil {
+		return code
 	}
 	defer st.Close()
 	if err := st.CloseStudy(ctx, *study); err != nil {

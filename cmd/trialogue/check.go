@@ -6,14 +6,12 @@ import (
 	"flag"
 	"fmt"
 	"io"
-	"os"
 	"sort"
 	"strings"
 	"text/tabwriter"
 
 	"trialogue/arms"
 	"trialogue/arms/codes"
-	"trialogue/store"
 	"trialogue/web"
 )
 
@@ -22,11 +20,8 @@ func runCheck(args []string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("trialogue check", flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	fs.Usage = func() { fmt.Fprintln(stderr, "usage: trialogue check FILE") }
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	if ok, code := parseFlags(fs, args); !ok {
+		return code
 	}
 	if fs.NArg() != 1 {
 		fs.Usage()
@@ -187,14 +182,9 @@ func runCode(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 		fmt.Fprintln(stderr, "usage: trialogue code verify --db PATH --study ID RID CODE")
 		return exitUsage
 	}
-	if _, err := os.Stat(*db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
-		return exitUsage
-	}
-	st, err := store.Open(ctx, *db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
+	st, status := openDB(ctx, *db, stderr)
+	if st == nil {
+		return status
 	}
 	defer st.Close()
 	sv, err := st.Study(ctx, *study)

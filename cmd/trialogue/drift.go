@@ -33,24 +33,16 @@ func runDrift(ctx context.Context, args []string, stdout, stderr io.Writer) int 
 	db := fs.String("db", "", "SQLite database `file`")
 	study := fs.String("study", "", "study `id`")
 	runs := fs.Int("runs", 0, "times each probe is played (default: the study's drift.runs, or 5)")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	if ok, code := parseFlags(fs, args); !ok {
+		return code
 	}
 	if *db == "" || *study == "" || fs.NArg() != 0 || *runs < 0 || *runs > 100 {
 		fmt.Fprintln(stderr, "usage: trialogue drift --db PATH --study ID [--runs N (1 to 100)]")
 		return exitUsage
 	}
-	if _, err := os.Stat(*db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
-		return exitUsage
-	}
-	st, err := store.Open(ctx, *db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
+	st, code := openDB(ctx, *db, stderr)
+	if st == nil {
+		return code
 	}
 	defer st.Close()
 	sv, err := st.Study(ctx, *study)

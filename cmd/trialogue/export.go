@@ -6,7 +6,6 @@ import (
 	"flag"
 	"fmt"
 	"io"
-	"os"
 
 	"trialogue/arms"
 	"trialogue/store"
@@ -26,24 +25,16 @@ func runExport(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	pilot := fs.Bool("include-pilot", false, "include the sessions marked pilot")
 	synthetic := fs.Bool("include-synthetic", false, "include the sessions of synthetic respondents (trialogue simulate)")
 	release := fs.Bool("release", false, "a shareable copy: respondent ids replaced by a keyed hash, personal details in text masked")
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	if ok, code := parseFlags(fs, args); !ok {
+		return code
 	}
 	if *db == "" || *id == "" || *out == "" || fs.NArg() != 0 {
 		fmt.Fprintln(stderr, exportUsage)
 		return exitUsage
 	}
-	if _, err := os.Stat(*db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
-		return exitUsage
-	}
-	st, err := store.Open(ctx, *db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
+	st, code := openDB(ctx, *db, stderr)
+	if st == nil {
+		return code
 	}
 	defer st.Close()
 	sv, err := st.Study(ctx, *id)
