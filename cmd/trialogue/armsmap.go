@@ -7,11 +7,8 @@ import (
 	"fmt"
 	"io"
 	"os"
-	"path/filepath"
 
-	"trialogue/arms"
 	"trialogue/arms/analysis/textmap"
-	"trialogue/store"
 )
 
 const armsMapUsage = `usage: trialogue arms-map --db PATH --study ID [--permutations N] [--seed N] [--out DIR]`
@@ -36,47 +33,21 @@ func runArmsMap(ctx context.Context, args []string, stdout, stderr io.Writer) in
 		fmt.Fprintln(stderr, armsMapUsage)
 		return exitUsage
 	}
-	if _, err := os.Stat(*db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
-		return exitUsage
-	}
-	st, err := store.Open(ctx, *db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
+	st, code := openAnalysisStore(ctx, *db, stderr)
+	if code != exitOK {
+		return code
 	}
 	defer st.Close()
-	sv, err := st.Study(ctx, *id)
-	if errors.Is(err, store.ErrNotFound) {
-		fmt.Fprintf(stderr, "trialogue: study %q is not in %s\n", *id, *db)
-		return exitUsage
+	d, code := readDesign(ctx, st, *db, *id, stderr)
+	if code != exitOK {
+		return code
 	}
+	docs, sessions, err := st.MapDocs(ctx, *id)
 	if err != nil {
 		fmt.Fprintf(stderr, "trialogue: %v\n", err)
 		return exitFail
 	}
-	canon, err := st.StudyCanonical(ctx, *id, sv.Version)
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
-	}
-	study, err := arms.FromCanonical(canon)
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
-	}
-	msgs, err := st.ModelMessages(ctx, *id)
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return exitFail
-	}
-	docs := make([]textmap.Doc, len(msgs))
-	sessions := make([]int64, len(msgs))
-	for i, m := range msgs {
-		docs[i] = textmap.Doc{Arm: m.Arm, Text: m.Text}
-		sessions[i] = m.SessionID
-	}
-	res, err := textmap.Build(docs, study.ArmOrder, textmap.Options{Permutations: *perms, Seed: *seed})
+	res, err := textmap.Build(docs, d.Study.ArmOrder, textmap.Options{Permutations: *perms, Seed: *seed})
 	if err != nil {
 		fmt.Fprintf(stderr, "trialogue arms-map: %v\n", err)
 		return exitUsage
@@ -92,21 +63,7 @@ func runArmsMap(ctx context.Context, args []string, stdout, stderr io.Writer) in
 		fmt.Fprintf(stderr, "trialogue arms-map: %v\n", err)
 		return exitFail
 	}
-	create := func(name string) (io.WriteCloser, error) {
-		f, err := os.Create(filepath.Join(*out, name))
-		if err != nil {
-			return nil, fmt.Errorf("create %s: %w", name, err)
-		}
-		return f, nil
-	}
-	err = textmap.WriteCSV(create, res, sessions)
-	if err == nil {
-		var f io.WriteCloser
-		if f, err = create("armsmap.svg"); err == nil {
-			err = errors.Join(textmap.WriteSVG(f, res), f.Close())
-		}
-	}
-	if err != nil {
+	if err := textmap.WriteFiles(folderCreate(*out), res, sessions); err != nil {
 		fmt.Fprintf(stderr, "trialogue arms-map: %v\n", err)
 		return exitFail
 	}

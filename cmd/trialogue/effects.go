@@ -102,20 +102,10 @@ func runEffects(ctx context.Context, args []string, stdout, stderr io.Writer) in
 		fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
 		return exitUsage
 	}
-	tab, err := analysis.ReadOutcomes(file, filepath.Base(f.outcomes))
+	reps, err := analysis.Run(study, units, file, filepath.Base(f.outcomes), f.outcomeCols, f.spec)
 	file.Close()
 	if err != nil {
 		return analysisFailed(stderr, "effects", err)
-	}
-	var reps []*analysis.Report
-	for _, col := range f.outcomeCols {
-		spec := f.spec
-		spec.Outcome = col
-		rep, err := analysis.Analyze(study, units, tab, spec)
-		if err != nil {
-			return analysisFailed(stderr, "effects", err)
-		}
-		reps = append(reps, rep)
 	}
 	for i, rep := range reps {
 		if i > 0 {
@@ -151,73 +141,61 @@ func analysisFailed(stderr io.Writer, cmd string, err error) int {
 
 // loadDesign reads the study's newest version and its sessions.
 func loadDesign(ctx context.Context, db, id string, stderr io.Writer) (*arms.Study, []analysis.Unit, int) {
+	st, code := openAnalysisStore(ctx, db, stderr)
+	if code != exitOK {
+		return nil, nil, code
+	}
+	defer st.Close()
+	d, code := readDesign(ctx, st, db, id, stderr)
+	if code != exitOK {
+		return nil, nil, code
+	}
+	return d.Study, d.Units, exitOK
+}
+
+// openAnalysisStore opens an existing database for an analysis command.
+func openAnalysisStore(ctx context.Context, db string, stderr io.Writer) (*store.Store, int) {
 	if _, err := os.Stat(db); err != nil {
 		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", db, err)
-		return nil, nil, exitUsage
+		return nil, exitUsage
 	}
 	st, err := store.Open(ctx, db, store.Options{})
 	if err != nil {
 		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return nil, nil, exitFail
+		return nil, exitFail
 	}
-	defer st.Close()
-	sv, err := st.Study(ctx, id)
+	return st, exitOK
+}
+
+// readDesign reads a study's design; a study the database lacks is bad input.
+func readDesign(ctx context.Context, st *store.Store, db, id string, stderr io.Writer) (*store.Design, int) {
+	d, err := st.Design(ctx, id)
 	if errors.Is(err, store.ErrNotFound) {
 		fmt.Fprintf(stderr, "trialogue: study %q is not in %s\n", id, db)
-		return nil, nil, exitUsage
+		return nil, exitUsage
 	}
 	if err != nil {
 		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return nil, nil, exitFail
+		return nil, exitFail
 	}
-	canon, err := st.StudyCanonical(ctx, id, sv.Version)
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return nil, nil, exitFail
-	}
-	study, err := arms.FromCanonical(canon)
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return nil, nil, exitFail
-	}
-	sessions, err := st.Sessions(ctx, id)
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return nil, nil, exitFail
-	}
-	units := make([]analysis.Unit, len(sessions))
-	for i, s := range sessions {
-		units[i] = analysis.Unit{RID: s.RID, Arm: s.Arm, Stratum: s.Stratum, Slot: s.Slot, Finished: s.Finished(), Covariates: s.Covariates}
-	}
-	return study, units, exitOK
+	return d, exitOK
 }
 
 func writeEffectsFiles(dir string, reps []*analysis.Report) error {
 	if err := os.MkdirAll(dir, 0o755); err != nil {
 		return fmt.Errorf("create %s: %w", dir, err)
 	}
-	write := func(name string, fn func(io.Writer) error) error {
+	return analysis.WriteFiles(folderCreate(dir), reps)
+}
+
+// folderCreate opens named files in a folder, for the WriteFiles functions.
+func folderCreate(dir string) func(name string) (io.WriteCloser, error) {
+	return func(name string) (io.WriteCloser, error) {
 		path := filepath.Join(dir, name)
 		file, err := os.Create(path)
 		if err != nil {
-			return fmt.Errorf("create %s: %w", path, err)
+			return nil, fmt.Errorf("create %s: %w", path, err)
 		}
-		if err := fn(file); err != nil {
-			file.Close()
-			return err
-		}
-		if err := file.Close(); err != nil {
-			return fmt.Errorf("write %s: %w", path, err)
-		}
-		return nil
+		return file, nil
 	}
-	// Balance does not depend on the outcome; attrition is that of the
-	// first outcome (the JSON has every outcome's).
-	return errors.Join(
-		write("effects.csv", func(w io.Writer) error { return analysis.WriteEffectsCSV(w, reps) }),
-		write("balance.csv", func(w io.Writer) error { return analysis.WriteBalanceCSV(w, reps[0]) }),
-		write("attrition.csv", func(w io.Writer) error { return analysis.WriteAttritionCSV(w, reps[0]) }),
-		write("effects.json", func(w io.Writer) error { return analysis.WriteJSON(w, reps) }),
-		write("effects.svg", func(w io.Writer) error { return analysis.WriteCoefPlot(w, reps) }),
-	)
 }

@@ -2,6 +2,7 @@ package textmap
 
 import (
 	"encoding/csv"
+	"errors"
 	"fmt"
 	"io"
 	"strconv"
@@ -147,4 +148,21 @@ func WriteSVG(w io.Writer, r *Result) error {
 		return fmt.Errorf("write arms map plot: %w", err)
 	}
 	return nil
+}
+
+// Files are the names of the files WriteFiles writes.
+var Files = []string{"armsmap-points.csv", "armsmap-distances.csv", "armsmap-terms.csv", "armsmap-summary.csv", "armsmap.svg"}
+
+// WriteFiles writes the map's CSV files and its SVG through create, which
+// opens a named file (in a folder for the command, in a zip archive for
+// the console); sessions holds each message's session id.
+func WriteFiles(create func(name string) (io.WriteCloser, error), r *Result, sessions []int64) error {
+	if err := WriteCSV(create, r, sessions); err != nil {
+		return err
+	}
+	wc, err := create("armsmap.svg")
+	if err != nil {
+		return err
+	}
+	return errors.Join(WriteSVG(wc, r), wc.Close())
 }
