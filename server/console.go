@@ -55,6 +55,7 @@ func (s *Server) consoleRoutes(r chi.Router) {
 	r.MethodNotAllowed(func(w http.ResponseWriter, r *http.Request) {
 		s.consoleFail(w, r, &Error{Status: http.StatusMethodNotAllowed, Msg: "This console address does not take that method."})
 	})
+	ca := newConsoleAnalysis(s)
 	r.Get("/login", s.handleLoginPage)
 	r.Post("/login", s.handleLogin)
 	r.Group(func(r chi.Router) {
@@ -75,6 +76,14 @@ func (s *Server) consoleRoutes(r chi.Router) {
 			r.Get("/sessions", s.handleTranscripts)
 			r.Get("/sessions/{session}", s.handleTranscript)
 			r.Get("/export.zip", s.handleExport)
+			// Analyses read only: viewers run them too.
+			r.Get("/analysis", ca.handleAnalysisForm)
+			r.Post("/analysis", ca.handleAnalysisRun)
+			r.Get("/analysis/{result}", ca.handleAnalysisResult)
+			r.Get("/analysis/{result}/effects.svg", ca.handleAnalysisSVG)
+			r.Get("/analysis/{result}/effects.zip", ca.handleAnalysisZip)
+			r.Get("/arms-map", ca.handleArmsMap)
+			r.Get("/arms-map.svg", ca.handleArmsMapSVG)
 			r.Group(func(r chi.Router) {
 				r.Use(s.requireOwner)
 				r.Post("/phase", s.handlePhase)
@@ -103,7 +112,7 @@ type consolePage struct {
 	Lang, Dir, PageTitle string
 	User                 *store.User  // nil on the sign-in page
 	Study                *studyHeader // the study the page is about, if any
-	Section              string       // overview, monitor or sessions
+	Section              string       // overview, monitor, sessions, analysis or arms-map
 	Notice               string       // the outcome of the last action
 }
 
