@@ -30,11 +30,8 @@ func runVerify(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	fs.Usage = func() {
 		fmt.Fprintln(stderr, "usage: trialogue verify --db PATH --study ID\n       trialogue verify BUNDLE.tar.gz")
 	}
-	if err := fs.Parse(args); err != nil {
-		if errors.Is(err, flag.ErrHelp) {
-			return exitOK
-		}
-		return exitUsage
+	if ok, code := parseFlags(fs, args); !ok {
+		return code
 	}
 	var d *store.Dataset
 	switch {
