@@ -110,25 +110,10 @@ func (s *Store) SessionByRID(ctx context.Context, study, rid string) (Session, e
 	return sessionWhere(ctx, s.rs, `s.study_id = ? AND s.rid = ?`, study, rid)
 }
 
-// Sessions lists a study's sessions in order of entry.
+// Sessions lists all of a study's sessions in order of entry, synthetic
+// ones included: what an audit needs.
 func (s *Store) Sessions(ctx context.Context, study string) ([]Session, error) {
-	rows, err := s.rs.QueryContext(ctx, sessionSelect+` WHERE s.study_id = ? ORDER BY s.id`, study)
-	if err != nil {
-		return nil, fmt.Errorf("sessions of %q: %w", study, err)
-	}
-	defer rows.Close()
-	var out []Session
-	for rows.Next() {
-		sess, err := scanSession(rows)
-		if err != nil {
-			return nil, fmt.Errorf("sessions of %q: %w", study, err)
-		}
-		out = append(out, sess)
-	}
-	if err := rows.Err(); err != nil {
-		return nil, fmt.Errorf("sessions of %q: %w", study, err)
-	}
-	return out, nil
+	return s.SessionsOf(ctx, study, WithSynthetic)
 }
 
 // Finish marks the session finished; finishing twice keeps the first time.

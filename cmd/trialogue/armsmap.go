@@ -33,7 +33,7 @@ func runArmsMap(ctx context.Context, args []string, stdout, stderr io.Writer) in
 		fmt.Fprintln(stderr, armsMapUsage)
 		return exitUsage
 	}
-	st, code := openAnalysisStore(ctx, *db, stderr)
+	st, code := openDB(ctx, *db, stderr)
 	if code != exitOK {
 		return code
 	}

@@ -141,7 +141,7 @@ func analysisFailed(stderr io.Writer, cmd string, err error) int {
 
 // loadDesign reads the study's newest version and its sessions.
 func loadDesign(ctx context.Context, db, id string, stderr io.Writer) (*arms.Study, []analysis.Unit, int) {
-	st, code := openAnalysisStore(ctx, db, stderr)
+	st, code := openDB(ctx, db, stderr)
 	if code != exitOK {
 		return nil, nil, code
 	}
@@ -151,20 +151,6 @@ func loadDesign(ctx context.Context, db, id string, stderr io.Writer) (*arms.Stu
 		return nil, nil, code
 	}
 	return d.Study, d.Units, exitOK
-}
-
-// openAnalysisStore opens an existing database for an analysis command.
-func openAnalysisStore(ctx context.Context, db string, stderr io.Writer) (*store.Store, int) {
-	if _, err := os.Stat(db); err != nil {
-		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", db, err)
-		return nil, exitUsage
-	}
-	st, err := store.Open(ctx, db, store.Options{})
-	if err != nil {
-		fmt.Fprintf(stderr, "trialogue: %v\n", err)
-		return nil, exitFail
-	}
-	return st, exitOK
 }
 
 // readDesign reads a study's design; a study the database lacks is bad input.
