@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"os"
 	"path/filepath"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"testing"
@@ -339,5 +340,27 @@ func BenchmarkEnter(b *testing.B) {
 		if _, _, err := st.Enter(ctx, sv, "lean="+lean, respondent(fmt.Sprintf("b%d", i), lean), as); err != nil {
 			b.Fatal(err)
 		}
+	}
+}
+
+// TestWriterSurvivesPanic: a write that panics fails alone; the writes
+// around it commit and the store keeps working.
+func TestWriterSurvivesPanic(t *testing.T) {
+	ctx := context.Background()
+	st, _, sv, as := mustDemo(t)
+	sess, _, err := st.Enter(ctx, sv, "lean=left", respondent("p1", "left"), as)
+	if err != nil {
+		t.Fatal(err)
+	}
+	_, err = st.AddReply(ctx, sess, "this reply's check panics", "x1", func([]store.Turn, bool) error { panic("a bug in a check") })
+	if err == nil || !strings.Contains(err.Error(), "panicked") {
+		t.Fatalf("got %v, want the panic as an error", err)
+	}
+	if _, err := st.AddReply(ctx, sess, "a later reply", "x2", func([]store.Turn, bool) error { return nil }); err != nil {
+		t.Fatalf("the store stopped working after a panic: %v", err)
+	}
+	turns, err := st.Turns(ctx, sess.ID)
+	if err != nil || len(turns) != 1 || turns[0].Text != "a later reply" {
+		t.Fatalf("got %+v (%v), want only the later reply", turns, err)
 	}
 }

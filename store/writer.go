@@ -113,7 +113,7 @@ func (w *writer) run(batch []*job) {
 			errs[i] = fmt.Errorf("savepoint: %w", err)
 			continue
 		}
-		errs[i] = j.fn(context.WithoutCancel(j.ctx), tx)
+		errs[i] = runJob(j, tx)
 		if errs[i] != nil {
 			if _, err := tx.ExecContext(ctx, "ROLLBACK TO job"); err != nil {
 				sqltx.Rollback()
@@ -137,4 +137,16 @@ func (w *writer) run(batch []*job) {
 	for i, j := range batch {
 		j.err <- errs[i]
 	}
+}
+
+// runJob runs one job, turning a panic into its error so that one faulty
+// write cannot stop the writer, which every other write waits on; its
+// savepoint is then rolled back like any failed job's.
+func runJob(j *job, tx *Tx) (err error) {
+	defer func() {
+		if v := recover(); v != nil {
+			err = fmt.Errorf("write panicked: %v", v)
+		}
+	}()
+	return j.fn(context.WithoutCancel(j.ctx), tx)
 }
