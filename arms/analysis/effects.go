@@ -65,6 +65,10 @@ type Spec struct {
 	// skips randomization inference.
 	Permutations int
 	Seed         uint64 // master seed of the re-draws, so p-values can be reproduced
+	// LeftOut are respondent ids whose sessions the caller left out of
+	// units on purpose (for example flagged transcripts): their rows in the
+	// outcome file are skipped instead of reported as unknown ids.
+	LeftOut map[string]bool
 }
 
 // Effect is one treatment arm against the pooled control.
@@ -305,7 +309,9 @@ func prepare(study *arms.Study, units []Unit, t *Table, spec Spec) (*design, err
 		firstRow[id] = rn
 		u, ok := byRID[id]
 		if !ok {
-			unknown = append(unknown, fmt.Sprintf("row %d (%q)", rn, clip(id, 40)))
+			if !spec.LeftOut[id] {
+				unknown = append(unknown, fmt.Sprintf("row %d (%q)", rn, clip(id, 40)))
+			}
 			continue
 		}
 		d.row[u] = r

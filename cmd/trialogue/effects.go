@@ -8,10 +8,12 @@ import (
 	"io"
 	"os"
 	"path/filepath"
+	"sort"
 	"strings"
 
 	"trialogue/arms"
 	"trialogue/arms/analysis"
+	"trialogue/arms/flags"
 	"trialogue/store"
 )
 
@@ -77,9 +79,6 @@ func parseEffectsFlags(args []string, stderr io.Writer) (*effectsFlags, error) {
 	if len(missing) > 0 {
 		return nil, fmt.Errorf("missing %s\n%s", strings.Join(missing, ", "), effectsUsage)
 	}
-	if f.excludeFlagged {
-		return nil, errors.New("--exclude-flagged: transcript flags are not available yet in this version of Trialogue; run without it")
-	}
 	return f, nil
 }
 
@@ -93,10 +92,11 @@ func runEffects(ctx context.Context, args []string, stdout, stderr io.Writer) in
 		fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
 		return exitUsage
 	}
-	study, units, code := loadDesign(ctx, f.db, f.study, stderr)
+	study, units, leftOut, code := loadDesign(ctx, f.db, f.study, f.excludeFlagged, stdout, stderr)
 	if code != exitOK {
 		return code
 	}
+	f.spec.LeftOut = leftOut
 	file, err := os.Open(f.outcomes)
 	if err != nil {
 		fmt.Fprintf(stderr, "trialogue effects: %v\n", err)
@@ -139,18 +139,67 @@ func analysisFailed(stderr io.Writer, cmd string, err error) int {
 	return exitFail
 }
 
-// loadDesign reads the study's newest version and its sessions.
-func loadDesign(ctx context.Context, db, id string, stderr io.Writer) (*arms.Study, []analysis.Unit, int) {
+// loadDesign reads the study's newest version and its sessions, leaving out
+// those whose transcripts are flagged when asked (and saying how many, by
+// flag: leaving out respondents after assignment can bias the comparison if
+// the arms are flagged at different rates).
+func loadDesign(ctx context.Context, db, id string, excludeFlagged bool, stdout, stderr io.Writer) (*arms.Study, []analysis.Unit, map[string]bool, int) {
 	st, code := openDB(ctx, db, stderr)
 	if code != exitOK {
-		return nil, nil, code
+		return nil, nil, nil, code
 	}
 	defer st.Close()
 	d, code := readDesign(ctx, st, db, id, stderr)
 	if code != exitOK {
-		return nil, nil, code
+		return nil, nil, nil, code
 	}
-	return d.Study, d.Units, exitOK
+	if !excludeFlagged {
+		return d.Study, d.Units, nil, exitOK
+	}
+	flagged, err := st.Flags(ctx, d.Study, id)
+	if err == nil {
+		var sessions []store.Session
+		if sessions, err = st.Sessions(ctx, id); err == nil {
+			units, left, counts := withoutFlagged(d.Units, sessions, flagged)
+			fmt.Fprintf(stdout, "Left out %d of %d respondents whose transcripts are flagged (%s); flagged respondents per arm can differ, so compare with the full analysis.\n\n",
+				len(d.Units)-len(units), len(d.Units), counts)
+			return d.Study, units, left, exitOK
+		}
+	}
+	fmt.Fprintf(stderr, "trialogue effects: --exclude-flagged: %v\n", err)
+	return nil, nil, nil, exitFail
+}
+
+// withoutFlagged drops the units whose sessions carry any flag, and counts
+// the flags seen among them.
+func withoutFlagged(units []analysis.Unit, sessions []store.Session, flagged map[int64][]flags.Flag) ([]analysis.Unit, map[string]bool, string) {
+	drop := map[string]bool{}
+	count := map[string]int{}
+	for _, s := range sessions {
+		fs, ok := flagged[s.ID]
+		if !ok || len(fs) == 0 {
+			continue
+		}
+		drop[s.RID] = true
+		for _, f := range fs {
+			count[f.Code]++
+		}
+	}
+	out := make([]analysis.Unit, 0, len(units))
+	for _, u := range units {
+		if !drop[u.RID] {
+			out = append(out, u)
+		}
+	}
+	codes := make([]string, 0, len(count))
+	for c, n := range count {
+		codes = append(codes, fmt.Sprintf("%s %d", c, n))
+	}
+	sort.Strings(codes)
+	if len(codes) == 0 {
+		return out, drop, "no flags"
+	}
+	return out, drop, strings.Join(codes, ", ")
 }
 
 // readDesign reads a study's design; a study the database lacks is bad input.

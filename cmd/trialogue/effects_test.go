@@ -153,13 +153,38 @@ func TestEffectsPlanted(t *testing.T) {
 			}
 		}
 	})
+	t.Run("OKExcludeFlagged", func(t *testing.T) {
+		// Thirty respondents answer in one word: each is flagged as satisficing.
+		ctx := context.Background()
+		st, err := store.Open(ctx, db, store.Options{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		sessions, err := st.Sessions(ctx, "quillhaven-cable-car")
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, sess := range sessions[:30] {
+			if _, err := st.AddReply(ctx, sess, "ok", "short", func([]store.Turn, bool) error { return nil }); err != nil {
+				t.Fatal(err)
+			}
+		}
+		st.Close()
+		var stdout, stderr bytes.Buffer
+		args := append(append([]string{}, base...), "--exclude-flagged", "--permutations", "0")
+		if code := run(context.Background(), args, &stdout, &stderr); code != exitOK {
+			t.Fatalf("got exit %d, want 0; stderr: %s", code, stderr.String())
+		}
+		if want := "Left out 30 of 900 respondents whose transcripts are flagged (satisficed 30)"; !strings.Contains(stdout.String(), want) {
+			t.Fatalf("got %.300q, want it to say %q", stdout.String(), want)
+		}
+	})
 	bad := []struct {
 		name string
 		args []string
 		want string
 	}{
 		{"ErrUnknownControl", []string{"--control", "notice,placebo"}, `control arm "placebo" does not exist`},
-		{"ErrExcludeFlagged", []string{"--exclude-flagged"}, "transcript flags are not available yet"},
 		{"ErrNonNumericColumn", []string{"--outcome", "Response ID"}, `column "Response ID" has cells that are not numbers: row 2 ("QH-00000")`},
 		{"ErrUnknownStudy", []string{"--study", "no-such-study"}, `study "no-such-study" is not in`},
 		{"ErrMissingFlags", nil, "missing"},
