@@ -334,7 +334,11 @@ func TestConsoleAnalysis(t *testing.T) {
 	for i, l := range lines {
 		cells := strings.Split(l, ",")
 		if i > 0 && armOf[cells[0]] == "facts" {
-			if seen++; seen > 1 {
+			// keep the first one whose cells are filled (the fixture leaves some
+			// outcomes empty at random), empty every other
+			if seen == 0 && cells[2] != "" && cells[3] != "" {
+				seen++
+			} else {
 				cells[2], cells[3] = "", ""
 			}
 		}
