@@ -3,10 +3,8 @@ package server_test
 import (
 	"context"
 	"io"
-	"log/slog"
 	"net/http"
 	"net/http/httptest"
-	"path/filepath"
 	"regexp"
 	"strings"
 	"sync"
@@ -16,41 +14,16 @@ import (
 	"github.com/prometheus/common/expfmt"
 	"github.com/prometheus/common/model"
 
-	"trialogue/arms"
 	"trialogue/server"
 	"trialogue/store"
-	"trialogue/web"
 )
 
 // newConfigFixture is newFixture with a server configuration of the test's
 // choosing and a clock the test moves.
 func newConfigFixture(t *testing.T, yaml string, cfg server.Config) (*fixture, *fakeClock) {
 	t.Helper()
-	ctx := context.Background()
-	def, err := arms.Parse("test.yaml", []byte(yaml))
-	if err != nil {
-		t.Fatalf("parse study: %v", err)
-	}
-	st, err := store.Open(ctx, filepath.Join(t.TempDir(), "t.db"), store.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { st.Close() })
-	assets, err := web.Load()
-	if err != nil {
-		t.Fatal(err)
-	}
-	cfg.Logger = slog.New(slog.DiscardHandler)
-	srv := server.New(st, assets, cfg)
 	clock := &fakeClock{now: time.Now()}
-	srv.Now = clock.Now
-	study, err := srv.AddStudy(ctx, def, []byte(yaml))
-	if err != nil {
-		t.Fatalf("add study: %v", err)
-	}
-	hs := httptest.NewServer(srv.Handler())
-	t.Cleanup(hs.Close)
-	return &fixture{t: t, srv: srv, st: st, http: hs, study: study}, clock
+	return buildFixture(t, yaml, cfg, clock.Now), clock
 }
 
 type fakeClock struct {

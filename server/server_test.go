@@ -62,6 +62,14 @@ type fixture struct {
 
 func newFixture(t testing.TB, yaml string, env map[string]string) *fixture {
 	t.Helper()
+	return buildFixture(t, yaml, server.Config{MaxBody: 4096, Getenv: func(k string) string { return env[k] }}, nil)
+}
+
+// buildFixture serves one study over loopback with the configuration
+// given (its log discarded), on a database in the test's folder; a non-nil
+// now replaces the server's clock.
+func buildFixture(t testing.TB, yaml string, cfg server.Config, now func() time.Time) *fixture {
+	t.Helper()
 	ctx := context.Background()
 	def, err := arms.Parse("test.yaml", []byte(yaml))
 	if err != nil {
@@ -76,7 +84,11 @@ func newFixture(t testing.TB, yaml string, env map[string]string) *fixture {
 	if err != nil {
 		t.Fatal(err)
 	}
-	srv := server.New(st, assets, server.Config{MaxBody: 4096, Logger: slog.New(slog.DiscardHandler), Getenv: func(k string) string { return env[k] }})
+	cfg.Logger = slog.New(slog.DiscardHandler)
+	srv := server.New(st, assets, cfg)
+	if now != nil {
+		srv.Now = now
+	}
 	study, err := srv.AddStudy(ctx, def, []byte(yaml))
 	if err != nil {
 		t.Fatalf("add study: %v", err)
