@@ -167,19 +167,7 @@ return: "` + ms.URL + `/back?rid={{.rid}}&code={{.code}}"
 		model.letGo()
 		closeMain(t, m)
 	})
-	opts := append(chromedp.DefaultExecAllocatorOptions[:],
-		chromedp.ExecPath(exe), chromedp.Headless, chromedp.NoSandbox, chromedp.DisableGPU,
-		chromedp.Flag("disable-background-networking", true),
-		chromedp.Flag("disable-component-update", true),
-		chromedp.Flag("disable-sync", true),
-		chromedp.Flag("no-first-run", true),
-		chromedp.Flag("disable-quic", true),
-		chromedp.UserDataDir(filepath.Join(dir, "chromium")),
-	)
-	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
-	t.Cleanup(cancelAlloc)
-	tab, cancelTab := chromedp.NewContext(allocCtx)
-	t.Cleanup(cancelTab)
+	tab := chromium(t, ctx, exe, dir)
 	if err := chromedp.Do(tab); err != nil {
 		t.Fatalf("start Chromium: %v", err)
 	}

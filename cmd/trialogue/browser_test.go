@@ -89,23 +89,7 @@ func TestBrowserDemo(t *testing.T) {
 	t.Cleanup(func() { closeMain(t, m) })
 	hostSite, frameSite := server.DemoSites(m.Listener.Addr())
 
-	opts := append(chromedp.DefaultExecAllocatorOptions[:],
-		chromedp.ExecPath(exe),
-		chromedp.Headless,
-		chromedp.NoSandbox,
-		chromedp.DisableGPU,
-		chromedp.Flag("disable-background-networking", true),
-		chromedp.Flag("disable-component-update", true),
-		chromedp.Flag("disable-sync", true),
-		chromedp.Flag("no-first-run", true),
-		chromedp.Flag("disable-quic", true),
-		chromedp.UserDataDir(filepath.Join(t.TempDir(), "chromium")),
-		chromedp.WindowSize(1000, 1100),
-	)
-	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
-	defer cancelAlloc()
-	top, cancelTop := chromedp.NewContext(allocCtx)
-	defer cancelTop()
+	top := chromium(t, ctx, exe, t.TempDir(), chromedp.WindowSize(1000, 1100))
 
 	// Each load of the host page is a new respondent with a random arm:
 	// load it until a chat arm comes up.
@@ -422,4 +406,26 @@ func phoneShot(t *testing.T, top, frame context.Context, dir string) {
 	if err := os.WriteFile(filepath.Join(dir, "respondent-phone-full.png"), full, 0o644); err != nil {
 		t.Fatal(err)
 	}
+}
+
+// chromium starts headless Chromium in a fresh profile under dir, with the
+// flags this machine needs to run it as root without reaching the network
+// (../shared/TOOLCHAIN.md, "Chromium and chromedp"); extra options, such as a
+// window size, come last. Chromium ends with the test.
+func chromium(t *testing.T, ctx context.Context, exe, dir string, extra ...chromedp.ExecAllocatorOption) context.Context {
+	t.Helper()
+	opts := append(chromedp.DefaultExecAllocatorOptions[:],
+		chromedp.ExecPath(exe), chromedp.Headless, chromedp.NoSandbox, chromedp.DisableGPU,
+		chromedp.Flag("disable-background-networking", true),
+		chromedp.Flag("disable-component-update", true),
+		chromedp.Flag("disable-sync", true),
+		chromedp.Flag("no-first-run", true),
+		chromedp.Flag("disable-quic", true),
+		chromedp.UserDataDir(filepath.Join(dir, "chromium")),
+	)
+	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, append(opts, extra...)...)
+	t.Cleanup(cancelAlloc)
+	tab, cancelTab := chromedp.NewContext(allocCtx)
+	t.Cleanup(cancelTab)
+	return tab
 }

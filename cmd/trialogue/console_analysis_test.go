@@ -3,7 +3,6 @@ package main
 import (
 	"context"
 	"math"
-	"path/filepath"
 	"strconv"
 	"strings"
 	"testing"
@@ -37,19 +36,7 @@ func TestBrowserConsoleAnalysis(t *testing.T) {
 	if _, err := m.Store.AddUser(ctx, email, store.RoleViewer, password, false); err != nil {
 		t.Fatal(err)
 	}
-	opts := append(chromedp.DefaultExecAllocatorOptions[:],
-		chromedp.ExecPath(exe), chromedp.Headless, chromedp.NoSandbox, chromedp.DisableGPU,
-		chromedp.Flag("disable-background-networking", true),
-		chromedp.Flag("disable-component-update", true),
-		chromedp.Flag("disable-sync", true),
-		chromedp.Flag("no-first-run", true),
-		chromedp.UserDataDir(filepath.Join(dir, "chromium")),
-		chromedp.WindowSize(1280, 1000),
-	)
-	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
-	defer cancelAlloc()
-	tab, cancelTab := chromedp.NewContext(allocCtx)
-	defer cancelTab()
+	tab := chromium(t, ctx, exe, dir, chromedp.WindowSize(1280, 1000))
 	shots := t.ArtifactDir()
 	e := &pageEnv{base: base, m: m, tab: tab, axe: axe, shots: shots}
 

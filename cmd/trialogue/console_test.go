@@ -156,20 +156,7 @@ func TestBrowserConsole(t *testing.T) {
 		t.Fatal(err)
 	}
 
-	opts := append(chromedp.DefaultExecAllocatorOptions[:],
-		chromedp.ExecPath(exe), chromedp.Headless, chromedp.NoSandbox, chromedp.DisableGPU,
-		chromedp.Flag("disable-background-networking", true),
-		chromedp.Flag("disable-component-update", true),
-		chromedp.Flag("disable-sync", true),
-		chromedp.Flag("no-first-run", true),
-		chromedp.Flag("disable-quic", true),
-		chromedp.UserDataDir(filepath.Join(dir, "chromium")),
-		chromedp.WindowSize(1280, 1000),
-	)
-	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
-	defer cancelAlloc()
-	tab, cancelTab := chromedp.NewContext(allocCtx)
-	defer cancelTab()
+	tab := chromium(t, ctx, exe, dir, chromedp.WindowSize(1280, 1000))
 	shots := os.Getenv("TRIALOGUE_SCREENSHOTS")
 	if shots == "" {
 		shots = t.ArtifactDir()
