@@ -101,6 +101,18 @@ func TestEntryRateLimit(t *testing.T) {
 				if n := f.sessionCount(); n != 2 {
 					t.Fatalf("sessions after a refused entry: got %d, want 2", n)
 				}
+				// the respondent's page says it in the catalogue's words
+				req, _ := http.NewRequest("GET", f.http.URL+"/s/harrow-limit?rid=L-5&lean=left", nil)
+				req.Header.Set("X-Forwarded-For", "198.51.100.7, 203.0.113.5")
+				again, err := noRedirect.Do(req)
+				if err != nil {
+					t.Fatal(err)
+				}
+				body, _ := io.ReadAll(again.Body)
+				again.Body.Close()
+				if again.StatusCode != http.StatusTooManyRequests || !strings.Contains(string(body), "Please wait a moment and try again.") {
+					t.Fatalf("got %d, want 429 with the catalogue's text: %.300s", again.StatusCode, body)
+				}
 			})
 			other := f.get("/s/harrow-limit?rid=L-4&lean=left", from("203.0.113.99"))
 			if trust {
