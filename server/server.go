@@ -5,7 +5,6 @@ package server
 
 import (
 	"context"
-	"errors"
 	"fmt"
 	"log/slog"
 	"net/http"
@@ -286,8 +285,6 @@ func (l *sessionLocks) lock(id int64) func() {
 		l.mu.Unlock()
 	}
 }
-
-var errNoStudy = errors.New("unknown study")
 
 // frameAncestors renders a study's frame-ancestors list for CSP.
 func frameAncestors(def *arms.Study) string {
