@@ -67,6 +67,7 @@ func dumpTables(tb testing.TB, path string) map[string][]string {
 // TestBackup copies a database while respondents enter and reply, restores
 // the copy and checks it row by row against the original.
 func TestBackup(t *testing.T) {
+	sqliteOnly(t)
 	ctx := context.Background()
 	dir := t.TempDir()
 	path := filepath.Join(dir, "live.db")

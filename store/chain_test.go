@@ -63,6 +63,7 @@ func check(t *testing.T, st *store.Store, study string) store.Report {
 // tamper changes the database file directly, as someone with the file could.
 func tamper(t *testing.T, st *store.Store, stmts ...string) {
 	t.Helper()
+	sqliteOnly(t)
 	db, err := sql.Open("sqlite", "file:"+st.Path()+"?_pragma=busy_timeout(5000)")
 	if err != nil {
 		t.Fatal(err)
@@ -145,6 +146,7 @@ func TestTamperDatabase(t *testing.T) {
 // fixForgedHash gives a forged chain row a hash that matches its content.
 func fixForgedHash(t *testing.T, st *store.Store) {
 	t.Helper()
+	sqliteOnly(t)
 	db, err := sql.Open("sqlite", "file:"+st.Path())
 	if err != nil {
 		t.Fatal(err)

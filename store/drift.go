@@ -26,7 +26,7 @@ type DriftRun struct {
 // SaveDriftRun stores a drift run with its outputs. The first run on a
 // study hash is marked as its baseline, whatever the caller says.
 func (s *Store) SaveDriftRun(ctx context.Context, r DriftRun) (DriftRun, error) {
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, r.Study, func(ctx context.Context, tx *Tx) error {
 		var n int
 		if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM drift_runs WHERE study_id = ? AND study_hash = ?`, r.Study, r.StudyHash).Scan(&n); err != nil {
 			return err
@@ -36,12 +36,9 @@ func (s *Store) SaveDriftRun(ctx context.Context, r DriftRun) (DriftRun, error) 
 			r.Status = "baseline"
 		}
 		r.At = s.now()
-		res, err := tx.ExecContext(ctx, `INSERT INTO drift_runs (study_id, version, study_hash, at, baseline, status, report) VALUES (?, ?, ?, ?, ?, ?, ?)`,
-			r.Study, r.Version, r.StudyHash, fmtTime(r.At), r.Baseline, r.Status, r.Report)
+		err := tx.QueryRowContext(ctx, `INSERT INTO drift_runs (study_id, version, study_hash, at, baseline, status, report) VALUES (?, ?, ?, ?, ?, ?, ?) RETURNING id`,
+			r.Study, r.Version, r.StudyHash, fmtTime(r.At), boolInt(r.Baseline), r.Status, r.Report).Scan(&r.ID)
 		if err != nil {
-			return err
-		}
-		if r.ID, err = res.LastInsertId(); err != nil {
 			return err
 		}
 		for _, o := range r.Outputs {

@@ -63,7 +63,7 @@ type records struct {
 // failed model calls inside one read transaction, so that all of them
 // come from the same moment even while respondents are writing.
 func (s *Store) loadRecords(ctx context.Context, study string) (*records, error) {
-	tx, err := s.r.BeginTx(ctx, nil)
+	tx, err := s.readTx(ctx)
 	if err != nil {
 		return nil, err
 	}

@@ -5,6 +5,8 @@ import (
 	"database/sql"
 	"errors"
 	"slices"
+	"strconv"
+	"strings"
 	"testing"
 	"time"
 
@@ -139,7 +141,11 @@ func newScenario(t *testing.T) *scenario {
 // store has no method to write in these tests.
 func rawDB(t *testing.T, st *store.Store) *sql.DB {
 	t.Helper()
-	db, err := sql.Open("sqlite", "file:"+st.Path()+"?_pragma=busy_timeout(10000)&_pragma=foreign_keys(1)")
+	driver, dsn := "sqlite", "file:"+st.Path()+"?_pragma=busy_timeout(10000)&_pragma=foreign_keys(1)"
+	if onPostgres {
+		driver, dsn = "pgx", st.Path() // the test server trusts its local role: no password is masked
+	}
+	db, err := sql.Open(driver, dsn)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -149,6 +155,11 @@ func rawDB(t *testing.T, st *store.Store) *sql.DB {
 
 func mustExec(t *testing.T, db *sql.DB, q string, args ...any) {
 	t.Helper()
+	if onPostgres { // $1, $2, ... for ?: these statements hold no other question mark
+		for i := 1; strings.Contains(q, "?"); i++ {
+			q = strings.Replace(q, "?", "$"+strconv.Itoa(i), 1)
+		}
+	}
 	if _, err := db.Exec(q, args...); err != nil {
 		t.Fatalf("%s: %v", q, err)
 	}

@@ -74,7 +74,7 @@ func (s *Store) Monitor(ctx context.Context, study string, c Cohort, since time.
 		return Snapshot{}, err
 	}
 	f := Snapshot{Tokens: map[string]TokenUse{}}
-	tx, err := s.r.BeginTx(ctx, &sql.TxOptions{ReadOnly: true})
+	tx, err := s.readTx(ctx)
 	if err != nil {
 		return f, fmt.Errorf("monitor %q: %w", study, err)
 	}

@@ -3,6 +3,7 @@ package store
 import (
 	"context"
 	"database/sql"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"strconv"
@@ -190,7 +191,7 @@ func (e *PhaseError) Error() string {
 // change; closing records the time, from which sessions under way have a
 // grace period.
 func (s *Store) ChangePhase(ctx context.Context, c PhaseChange) error {
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, c.Study, func(ctx context.Context, tx *Tx) error {
 		var phase string
 		if err := tx.QueryRowContext(ctx, `SELECT phase FROM studies WHERE id = ?`, c.Study).Scan(&phase); err != nil {
 			return notFound(err)
@@ -274,9 +275,7 @@ type PhaseEvent struct {
 
 // PhaseHistory lists a study's phase changes from its chain, oldest first.
 func (s *Store) PhaseHistory(ctx context.Context, study string) ([]PhaseEvent, error) {
-	rows, err := s.rs.QueryContext(ctx, `SELECT seq, at, COALESCE(json_extract(content, '$.data.from'), ''), COALESCE(json_extract(content, '$.data.to'), ''),
-		COALESCE(json_extract(content, '$.data.by'), ''), COALESCE(json_extract(content, '$.data.version'), 0), COALESCE(json_extract(content, '$.data.study_hash'), '')
-		FROM chain WHERE study_id = ? AND kind = ? ORDER BY seq`, study, EventPhase)
+	rows, err := s.rs.QueryContext(ctx, `SELECT seq, at, content FROM chain WHERE study_id = ? AND kind = ? ORDER BY seq`, study, EventPhase)
 	if err != nil {
 		return nil, fmt.Errorf("phase history of %q: %w", study, err)
 	}
@@ -284,9 +283,23 @@ func (s *Store) PhaseHistory(ctx context.Context, study string) ([]PhaseEvent, e
 	var out []PhaseEvent
 	for rows.Next() {
 		var e PhaseEvent
-		if err := rows.Scan(&e.Seq, &e.At, &e.From, &e.To, &e.By, &e.Version, &e.StudyHash); err != nil {
+		var content string
+		if err := rows.Scan(&e.Seq, &e.At, &content); err != nil {
 			return nil, fmt.Errorf("phase history of %q: %w", study, err)
 		}
+		var c struct {
+			Data struct {
+				From      string `json:"from"`
+				To        string `json:"to"`
+				By        string `json:"by"`
+				Version   int    `json:"version"`
+				StudyHash string `json:"study_hash"`
+			} `json:"data"`
+		}
+		if err := json.Unmarshal([]byte(content), &c); err != nil {
+			return nil, fmt.Errorf("phase history of %q: record %d: %w", study, e.Seq, err)
+		}
+		e.From, e.To, e.By, e.Version, e.StudyHash = c.Data.From, c.Data.To, c.Data.By, c.Data.Version, c.Data.StudyHash
 		out = append(out, e)
 	}
 	if err := rows.Err(); err != nil {
@@ -311,7 +324,7 @@ func (s *Store) SetEthicsRef(ctx context.Context, study, ref string, by Actor) e
 	case strings.IndexFunc(ref, unicode.IsControl) >= 0:
 		return &InvalidError{Msg: "the ethics approval reference holds a control character such as a line break"}
 	}
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, study, func(ctx context.Context, tx *Tx) error {
 		var phase, old string
 		if err := tx.QueryRowContext(ctx, `SELECT phase, COALESCE(ethics_ref, '') FROM studies WHERE id = ?`, study).Scan(&phase, &old); err != nil {
 			return notFound(err)
@@ -352,10 +365,22 @@ func entryRule(ctx context.Context, tx *Tx, sv StudyVersion) (pilot bool, err er
 	default:
 		return true, nil
 	}
-	var cap sql.NullInt64
-	if err := tx.QueryRowContext(ctx, `SELECT json_extract(canonical, '$.fielding.pilot_cap') FROM study_versions WHERE study_id = ? AND version = ?`,
-		sv.ID, sv.Version).Scan(&cap); err != nil {
+	var canonical string
+	if err := tx.QueryRowContext(ctx, `SELECT canonical FROM study_versions WHERE study_id = ? AND version = ?`,
+		sv.ID, sv.Version).Scan(&canonical); err != nil {
 		return false, err
+	}
+	var c struct {
+		Fielding struct {
+			PilotCap *int64 `json:"pilot_cap"`
+		} `json:"fielding"`
+	}
+	if err := json.Unmarshal([]byte(canonical), &c); err != nil {
+		return false, fmt.Errorf("study version %d: %w", sv.Version, err)
+	}
+	cap := sql.NullInt64{Valid: c.Fielding.PilotCap != nil}
+	if cap.Valid {
+		cap.Int64 = *c.Fielding.PilotCap
 	}
 	limit := int64(arms.DefaultPilotCap)
 	if cap.Valid && cap.Int64 > 0 {

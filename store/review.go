@@ -68,7 +68,7 @@ func (s *Store) Review(ctx context.Context, study string, a ReviewAction) (Revie
 		return Review{}, &InvalidError{Msg: fmt.Sprintf("a note or reason is valid text of at most %d characters", MaxReviewText)}
 	}
 	var out Review
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, study, func(ctx context.Context, tx *Tx) error {
 		var owner string
 		if err := tx.QueryRowContext(ctx, `SELECT study_id FROM sessions WHERE id = ?`, a.Session).Scan(&owner); err != nil || owner != study {
 			if err == nil || errors.Is(err, sql.ErrNoRows) {
@@ -174,7 +174,8 @@ type SessionFilter struct {
 	Reviewed  string // "yes", "no" or ""
 	Excluded  string // "yes", "no" or ""
 	// Search finds sessions whose respondent id or any turn contains the
-	// text (case-insensitive for ASCII letters, as SQLite's LIKE).
+	// text (case-insensitive: for ASCII letters on SQLite, for all letters on
+	// PostgreSQL).
 	Search string
 	// IDs, when not nil, keeps only these sessions (a filter computed
 	// outside SQL, such as a transcript flag).
@@ -228,7 +229,7 @@ func (s *Store) ListSessions(ctx context.Context, study string, f SessionFilter)
 	}
 	if q := strings.TrimSpace(f.Search); q != "" {
 		like := "%" + strings.NewReplacer(`\`, `\\`, `%`, `\%`, `_`, `\_`).Replace(q) + "%"
-		where += ` AND (s.rid LIKE ? ESCAPE '\' OR EXISTS (SELECT 1 FROM turns t WHERE t.session_id = s.id AND t.text LIKE ? ESCAPE '\'))`
+		where += ` AND (s.rid ` + s.d.like + ` ? ESCAPE '\' OR EXISTS (SELECT 1 FROM turns t WHERE t.session_id = s.id AND t.text ` + s.d.like + ` ? ESCAPE '\'))`
 		args = append(args, like, like)
 	}
 	if f.IDs != nil {
@@ -236,25 +237,25 @@ func (s *Store) ListSessions(ctx context.Context, study string, f SessionFilter)
 		if err != nil {
 			return nil, 0, err
 		}
-		where += ` AND s.id IN (SELECT value FROM json_each(?))`
+		where += ` AND ` + s.d.idList("s.id")
 		args = append(args, string(ids))
 	}
 	from := ` FROM sessions s LEFT JOIN reviews r ON r.session_id = s.id` + where
 	var total int
-	if err := s.r.QueryRowContext(ctx, `SELECT COUNT(*)`+from, args...).Scan(&total); err != nil {
+	if err := s.r.QueryRowContext(ctx, s.sql(`SELECT COUNT(*)`+from), args...).Scan(&total); err != nil {
 		return nil, 0, fmt.Errorf("sessions of %q: %w", study, err)
 	}
 	if f.Limit <= 0 {
 		f.Limit = 100
 	}
-	rows, err := s.r.QueryContext(ctx, `SELECT s.id, s.study_id, s.rid, s.token, s.version, s.study_hash, s.stratum, s.slot, s.arm, s.arm_code,
+	rows, err := s.r.QueryContext(ctx, s.sql(`SELECT s.id, s.study_id, s.rid, s.token, s.version, s.study_hash, s.stratum, s.slot, s.arm, s.arm_code,
 		s.covariates, s.created_at, s.finished_at, COALESCE(s.language, ''), s.pilot, s.synthetic,
 		(SELECT COUNT(*) FROM turns t WHERE t.session_id = s.id AND t.role = 'respondent'),
 		(SELECT COUNT(*) FROM turns t WHERE t.session_id = s.id),
 		COALESCE((SELECT MAX(t.created_at) FROM turns t WHERE t.session_id = s.id), s.created_at),
 		COALESCE(r.reviewed, 0), COALESCE(r.note, ''), COALESCE(r.excluded, 0), COALESCE(r.reason, ''), COALESCE(r.by_user, 0),
 		COALESCE((SELECT email FROM users u WHERE u.id = r.by_user), ''), COALESCE(r.at, '')`+from+
-		` ORDER BY s.id DESC LIMIT ? OFFSET ?`, append(args, f.Limit, max(f.Offset, 0))...)
+		` ORDER BY s.id DESC LIMIT ? OFFSET ?`), append(args, f.Limit, max(f.Offset, 0))...)
 	if err != nil {
 		return nil, 0, fmt.Errorf("sessions of %q: %w", study, err)
 	}

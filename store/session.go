@@ -51,7 +51,7 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 	if err != nil {
 		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
 	}
-	err = s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err = s.wr.do(ctx, sv.ID, func(ctx context.Context, tx *Tx) error {
 		var err error
 		sess, err = sessionWhere(ctx, tx, `s.study_id = ? AND s.rid = ?`, sv.ID, r.RID)
 		if err == nil {
@@ -74,13 +74,10 @@ func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		now := s.now()
 		sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
 			Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now, Language: r.Language}
-		res, err := tx.ExecContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language, pilot)
-			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''), ?)`,
-			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language, pilot)
+		err = tx.QueryRowContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language, pilot)
+			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''), ?) RETURNING id`,
+			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language, pilot).Scan(&sess.ID)
 		if err != nil {
-			return err
-		}
-		if sess.ID, err = res.LastInsertId(); err != nil {
 			return err
 		}
 		_, err = tx.ExecContext(ctx, `INSERT INTO strata (study_id, stratum, next_slot) VALUES (?, ?, ?)
@@ -119,7 +116,11 @@ func (s *Store) Sessions(ctx context.Context, study string) ([]Session, error) {
 // Finish marks the session finished; finishing twice keeps the first time.
 func (s *Store) Finish(ctx context.Context, id int64) (time.Time, error) {
 	var at string
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	key, err := s.studyKey(ctx, id)
+	if err != nil {
+		return time.Time{}, fmt.Errorf("finish session: %w", err)
+	}
+	err = s.wr.do(ctx, key, func(ctx context.Context, tx *Tx) error {
 		now := s.now()
 		res, err := tx.ExecContext(ctx, `UPDATE sessions SET finished_at = ? WHERE id = ? AND finished_at IS NULL`, fmtTime(now), id)
 		if err != nil {
@@ -194,4 +195,27 @@ func scanSession(row scanner) (Session, error) {
 		}
 	}
 	return sess, nil
+}
+
+// studyKey is the study a session belongs to, which the writer needs before
+// the write on PostgreSQL, to take the study's lock first; SQLite's single
+// writer needs none ("").
+func (s *Store) studyKey(ctx context.Context, sessionID int64) (string, error) {
+	if s.d.lockStudy == "" {
+		return "", nil
+	}
+	var study string
+	err := s.rs.QueryRowContext(ctx, `SELECT study_id FROM sessions WHERE id = ?`, sessionID).Scan(&study)
+	if errors.Is(err, sql.ErrNoRows) {
+		return "", fmt.Errorf("session %d: %w", sessionID, ErrNotFound)
+	}
+	return study, err
+}
+
+// boolInt is a flag as the schema stores it: INTEGER 0 or 1 in both engines.
+func boolInt(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
 }

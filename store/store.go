@@ -14,6 +14,7 @@ import (
 	"time"
 
 	"github.com/pressly/goose/v3"
+	"github.com/pressly/goose/v3/lock"
 	_ "modernc.org/sqlite" // the "sqlite" driver
 
 	"trialogue/migrations"
@@ -30,36 +31,52 @@ var (
 	ErrConflict = errors.New("conflict")
 )
 
-// Store is a Trialogue database: one SQLite file in WAL mode.
+// Store is a Trialogue database: one SQLite file in WAL mode, or a
+// PostgreSQL database that several server replicas may share.
 type Store struct {
-	w  *sql.DB // the single writer connection: BEGIN IMMEDIATE, so writers queue instead of deadlocking
-	r  *sql.DB // readers, which WAL lets run beside the writer
-	rs *stmts  // the readers' prepared statements
-	wr *writer // groups concurrent writes into shared commits
+	w  *sql.DB   // writers: on SQLite the single writer connection, BEGIN IMMEDIATE, so writers queue instead of deadlocking
+	r  *sql.DB   // readers, which WAL (SQLite) or MVCC (PostgreSQL) lets run beside the writers
+	rs *stmts    // the readers' statements
+	wr *writer   // groups concurrent writes into shared commits
+	d  *dialect  // where the engines' SQL differs
+	rb *rebinder // placeholders rewritten for PostgreSQL
 
-	path string
+	path string // the SQLite file, or the PostgreSQL URL without its password
 
 	// Now is the clock, a seam for tests.
 	Now func() time.Time
 }
 
-// Path is the database file.
+// Path is the database: the SQLite file, or the PostgreSQL URL with its
+// password masked.
 func (s *Store) Path() string { return s.path }
+
+// Engine is the database engine behind the store.
+func (s *Store) Engine() Engine { return s.d.engine }
 
 // Options tune how the database is opened.
 type Options struct {
 	// Synchronous is SQLite's synchronous pragma: FULL (default) makes every
 	// commit durable across a power loss; NORMAL is faster and still safe
-	// against a crash of the process.
+	// against a crash of the process. PostgreSQL takes its own setting
+	// (synchronous_commit) from the server.
 	Synchronous string
 }
 
-// Open opens (creating if needed) the database at path and applies pending
-// migrations.
-func Open(ctx context.Context, path string, opt Options) (*Store, error) {
-	if path == "" {
+// Open opens the database dsn names, creating a SQLite file if needed, and
+// applies pending migrations. A postgres:// or postgresql:// URL opens a
+// PostgreSQL database (EngineOf); anything else is a SQLite file path.
+func Open(ctx context.Context, dsn string, opt Options) (*Store, error) {
+	if dsn == "" {
 		return nil, errors.New("open database: no path given")
 	}
+	if EngineOf(dsn) == Postgres {
+		return openPostgres(ctx, dsn, opt)
+	}
+	return openSQLite(ctx, dsn, opt)
+}
+
+func openSQLite(ctx context.Context, path string, opt Options) (*Store, error) {
 	if opt.Synchronous == "" {
 		opt.Synchronous = "FULL"
 	}
@@ -85,23 +102,45 @@ func Open(ctx context.Context, path string, opt Options) (*Store, error) {
 		return nil, fmt.Errorf("open database %q: %w", path, err)
 	}
 	r.SetMaxOpenConns(max(4, runtime.NumCPU()*2))
-	s := &Store{w: w, r: r, path: path, Now: time.Now}
-	if err := w.PingContext(ctx); err != nil {
+	return start(ctx, &Store{w: w, r: r, path: path, d: dialects[SQLite], rb: &rebinder{}, Now: time.Now}, fmt.Sprintf("%q", path))
+}
+
+// start checks the connection, migrates and starts the writer.
+func start(ctx context.Context, s *Store, name string) (*Store, error) {
+	if err := s.w.PingContext(ctx); err != nil {
 		s.Close()
-		return nil, fmt.Errorf("open database %q: %w", path, err)
+		return nil, fmt.Errorf("open database %s: %w", name, err)
 	}
 	if err := s.migrate(ctx); err != nil {
 		s.Close()
-		return nil, fmt.Errorf("open database %q: %w", path, err)
+		return nil, fmt.Errorf("open database %s: %w", name, err)
 	}
-	s.wr = newWriter(w)
-	s.rs = newStmts(r)
+	s.wr = newWriter(s.w, s.d, s.rb)
+	s.rs = newStmts(s.r, s.d, s.rb)
 	return s, nil
 }
 
+// provider is goose on db; migrating (not only reading the version) takes
+// PostgreSQL's migration lock.
+func (s *Store) provider(db *sql.DB, migrating bool) (*goose.Provider, error) {
+	if s.d.engine == Postgres && migrating {
+		// Replicas starting together take turns: goose holds an advisory lock
+		// while it migrates.
+		locker, err := lock.NewPostgresSessionLocker()
+		if err != nil {
+			return nil, err
+		}
+		return goose.NewProvider(goose.DialectPostgres, db, migrations.Postgres,
+			goose.WithLogger(goose.NopLogger()), goose.WithSessionLocker(locker))
+	}
+	if s.d.engine == Postgres {
+		return goose.NewProvider(goose.DialectPostgres, db, migrations.Postgres, goose.WithLogger(goose.NopLogger()))
+	}
+	return goose.NewProvider(goose.DialectSQLite3, db, migrations.SQLite, goose.WithLogger(goose.NopLogger()))
+}
+
 func (s *Store) migrate(ctx context.Context) error {
-	p, err := goose.NewProvider(goose.DialectSQLite3, s.w, migrations.FS,
-		goose.WithLogger(goose.NopLogger()))
+	p, err := s.provider(s.w, true)
 	if err != nil {
 		return fmt.Errorf("migrations: %w", err)
 	}
@@ -125,7 +164,7 @@ func (s *Store) migrate(ctx context.Context) error {
 
 // Ready reports whether the database answers and its schema is current.
 func (s *Store) Ready(ctx context.Context) error {
-	p, err := goose.NewProvider(goose.DialectSQLite3, s.r, migrations.FS, goose.WithLogger(goose.NopLogger()))
+	p, err := s.provider(s.r, false)
 	if err != nil {
 		return fmt.Errorf("ready: %w", err)
 	}
@@ -138,6 +177,10 @@ func (s *Store) Ready(ctx context.Context) error {
 	}
 	return nil
 }
+
+// sql is query with its placeholders as the store's engine wants them, for
+// statements put together at run time.
+func (s *Store) sql(query string) string { return s.rb.sql(s.d, query) }
 
 // Close waits for writes under way and closes the database. Writes after
 // Close fail with ErrClosed.

@@ -5,6 +5,7 @@ import (
 	"errors"
 	"fmt"
 	"os"
+	"os/exec"
 	"path/filepath"
 	"strings"
 	"sync"
@@ -15,20 +16,85 @@ import (
 	"trialogue/arms"
 	"trialogue/arms/assign"
 	"trialogue/store"
+	"trialogue/store/pgtest"
 )
 
-// mustOpen opens a store on a file in the test's temporary folder.
+// The store's tests are its contract, and they run on both engines: as
+// they are, on SQLite files, and again in TestOnPostgres, which runs this
+// test binary once more with TRIALOGUE_STORE_ENGINE=postgres, so that
+// mustOpen gives each test a fresh PostgreSQL schema instead.
+var onPostgres = os.Getenv("TRIALOGUE_STORE_ENGINE") == "postgres"
+
+// pgPaths maps the file paths the tests choose to PostgreSQL schemas, so
+// that a test reopening "its file" reopens its schema.
+var pgPaths sync.Map
+
+// mustOpen opens a store on a file in the test's temporary folder (or, on
+// PostgreSQL, a fresh schema standing for that file).
 func mustOpen(tb testing.TB, path string) *store.Store {
 	tb.Helper()
 	if path == "" {
 		path = filepath.Join(tb.TempDir(), "t.db")
 	}
-	st, err := store.Open(context.Background(), path, store.Options{Synchronous: os.Getenv("TRIALOGUE_BENCH_SYNCHRONOUS")})
+	dsn := path
+	opt := store.Options{Synchronous: os.Getenv("TRIALOGUE_BENCH_SYNCHRONOUS")}
+	if onPostgres {
+		v, ok := pgPaths.Load(path)
+		if !ok {
+			v, _ = pgPaths.LoadOrStore(path, pgtest.Schema(tb))
+		}
+		dsn, opt = v.(string), store.Options{}
+	}
+	st, err := store.Open(context.Background(), dsn, opt)
 	if err != nil {
 		tb.Fatalf("open store: %v", err)
 	}
 	tb.Cleanup(func() { st.Close() })
 	return st
+}
+
+// sqliteOnly skips a test of the PostgreSQL run that reaches into the
+// SQLite file itself (tampering with it, backing it up): the contract it
+// checks is the file's.
+func sqliteOnly(tb testing.TB) {
+	tb.Helper()
+	if onPostgres {
+		tb.Skip("reaches into the SQLite file")
+	}
+}
+
+// TestOnPostgres runs every test of this package again on PostgreSQL: the
+// same test functions, each on its own schema of the server that
+// TRIALOGUE_TEST_POSTGRES names.
+func TestOnPostgres(t *testing.T) {
+	if onPostgres {
+		t.Skip("this is the PostgreSQL run")
+	}
+	pgtest.Server(t) // skips, or fails when PostgreSQL is required
+	args := []string{"-test.count=1", "-test.timeout=15m", "-test.skip=^TestOnPostgres$", "-test.v"}
+	if testing.Short() {
+		args = append(args, "-test.short")
+	}
+	cmd := exec.Command(os.Args[0], args...)
+	cmd.Env = append(os.Environ(), "TRIALOGUE_STORE_ENGINE=postgres")
+	out, err := cmd.CombinedOutput()
+	var passed, skipped []string
+	for _, line := range strings.Split(string(out), "\n") {
+		line = strings.TrimSpace(line)
+		switch {
+		case strings.HasPrefix(line, "--- PASS: Test"):
+			passed = append(passed, strings.Fields(line)[2])
+		case strings.HasPrefix(line, "--- SKIP: Test"):
+			skipped = append(skipped, strings.Fields(line)[2])
+		}
+	}
+	if err != nil {
+		t.Fatalf("the store's tests on PostgreSQL failed: %v\n%s", err, out)
+	}
+	if len(passed) == 0 {
+		t.Fatalf("the PostgreSQL run passed no test:\n%s", out)
+	}
+	t.Logf("on PostgreSQL: %d tests passed; skipped (SQLite file only): %s", len(passed), strings.Join(skipped, ", "))
 }
 
 func mustStudy(tb testing.TB) (*arms.Study, []byte) {

@@ -32,7 +32,7 @@ func (s *Store) RegisterStudy(ctx context.Context, st *arms.Study, source []byte
 	at := s.now()
 	now := fmtTime(at)
 	sv := StudyVersion{ID: st.ID, Hash: hash}
-	err = s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err = s.wr.do(ctx, st.ID, func(ctx context.Context, tx *Tx) error {
 		err := tx.QueryRowContext(ctx, `SELECT secret, seed FROM studies WHERE id = ?`, st.ID).Scan(&sv.Secret, &sv.Seed)
 		if errors.Is(err, sql.ErrNoRows) {
 			sv.Secret, sv.Seed = codes.NewSecret(), codes.NewSecret()
@@ -66,7 +66,7 @@ func (s *Store) RegisterStudy(ctx context.Context, st *arms.Study, source []byte
 // Study returns the newest version of a study.
 func (s *Store) Study(ctx context.Context, id string) (StudyVersion, error) {
 	sv := StudyVersion{ID: id}
-	err := s.r.QueryRowContext(ctx, `SELECT s.secret, s.seed, v.version, v.hash FROM studies s
+	err := s.rs.QueryRowContext(ctx, `SELECT s.secret, s.seed, v.version, v.hash FROM studies s
 		JOIN study_versions v ON v.study_id = s.id WHERE s.id = ? ORDER BY v.version DESC LIMIT 1`, id).
 		Scan(&sv.Secret, &sv.Seed, &sv.Version, &sv.Hash)
 	if errors.Is(err, sql.ErrNoRows) {
@@ -94,7 +94,7 @@ func (s *Store) StudyCanonical(ctx context.Context, id string, version int) ([]b
 // StudySource returns the study file of a version as it was registered.
 func (s *Store) StudySource(ctx context.Context, id string, version int) ([]byte, error) {
 	var src string
-	err := s.r.QueryRowContext(ctx, `SELECT source FROM study_versions WHERE study_id = ? AND version = ?`, id, version).Scan(&src)
+	err := s.rs.QueryRowContext(ctx, `SELECT source FROM study_versions WHERE study_id = ? AND version = ?`, id, version).Scan(&src)
 	if errors.Is(err, sql.ErrNoRows) {
 		return nil, fmt.Errorf("study %q version %d: %w", id, version, ErrNotFound)
 	}

@@ -33,7 +33,7 @@ func (f Synthetic) where() (string, error) {
 
 // MarkSynthetic marks a session as a synthetic respondent's.
 func (s *Store) MarkSynthetic(ctx context.Context, sessionID int64) error {
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		res, err := tx.ExecContext(ctx, `UPDATE sessions SET synthetic = 1 WHERE id = ?`, sessionID)
 		if err != nil {
 			return err

@@ -139,7 +139,7 @@ func (s *Store) AddTypedReply(ctx context.Context, sess Session, text, clientID 
 		}
 	}
 	var a Added
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, sess.StudyID, func(ctx context.Context, tx *Tx) error {
 		a = Added{}
 		var finished bool
 		if err := tx.QueryRowContext(ctx, `SELECT finished_at IS NOT NULL FROM sessions WHERE id = ?`, sess.ID).Scan(&finished); err != nil {
@@ -181,7 +181,11 @@ func (s *Store) AddTypedReply(ctx context.Context, sess Session, text, clientID 
 func (s *Store) AddModelTurn(ctx context.Context, t Turn) (Turn, error) {
 	t.Role = RoleAssistant
 	t.TextSHA256 = codes.SHA256Hex([]byte(t.Text))
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	key, err := s.studyKey(ctx, t.SessionID)
+	if err != nil {
+		return Turn{}, fmt.Errorf("add model turn: %w", err)
+	}
+	err = s.wr.do(ctx, key, func(ctx context.Context, tx *Tx) error {
 		var n int
 		if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM turns WHERE session_id = ?`, t.SessionID).Scan(&n); err != nil {
 			return err
@@ -237,7 +241,7 @@ func insertTurn(ctx context.Context, tx *Tx, t Turn) error {
 
 // RecordFailure logs a model call that failed after every retry.
 func (s *Store) RecordFailure(ctx context.Context, sessionID int64, kind string, status, attempts int) error {
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		_, err := tx.ExecContext(ctx, `INSERT INTO model_failures (session_id, at, kind, status, attempts) VALUES (?, ?, ?, ?, ?)`,
 			sessionID, fmtTime(s.now()), kind, status, attempts)
 		return err

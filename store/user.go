@@ -167,7 +167,7 @@ func (s *Store) AddUser(ctx context.Context, email, role, password string, mustC
 	}
 	hash := HashPassword(password)
 	u := User{Email: email, Role: role, MustChange: mustChange}
-	err = s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err = s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		var n int
 		if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM users WHERE email = ?`, email).Scan(&n); err != nil {
 			return err
@@ -176,13 +176,8 @@ func (s *Store) AddUser(ctx context.Context, email, role, password string, mustC
 			return &InvalidError{Msg: fmt.Sprintf("an account for %s exists already", email)}
 		}
 		u.CreatedAt = s.now()
-		res, err := tx.ExecContext(ctx, `INSERT INTO users (email, role, password_hash, created_at, must_change) VALUES (?, ?, ?, ?, ?)`,
-			email, role, hash, fmtTime(u.CreatedAt), mustChange)
-		if err != nil {
-			return err
-		}
-		u.ID, err = res.LastInsertId()
-		return err
+		return tx.QueryRowContext(ctx, `INSERT INTO users (email, role, password_hash, created_at, must_change) VALUES (?, ?, ?, ?, ?) RETURNING id`,
+			email, role, hash, fmtTime(u.CreatedAt), boolInt(mustChange)).Scan(&u.ID)
 	})
 	if err != nil {
 		return User{}, fmt.Errorf("add user %s: %w", email, err)
@@ -197,7 +192,7 @@ func (s *Store) SetPassword(ctx context.Context, userID int64, password string, 
 		return err
 	}
 	hash := HashPassword(password)
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		res, err := tx.ExecContext(ctx, `UPDATE users SET password_hash = ?, must_change = ? WHERE id = ?`, hash, mustChange, userID)
 		if err != nil {
 			return err
@@ -289,7 +284,7 @@ const loginFailureKeep = 24 * time.Hour
 // RecordLoginFailure notes a failed login for an address and a client
 // address, and forgets failures older than a day.
 func (s *Store) RecordLoginFailure(ctx context.Context, email, address string) error {
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		now := s.now()
 		if _, err := tx.ExecContext(ctx, `DELETE FROM login_failures WHERE at < ?`, fmtTime(now.Add(-loginFailureKeep))); err != nil {
 			return err
@@ -350,7 +345,7 @@ func (s *Store) NewConsoleSession(ctx context.Context, userID int64) (string, er
 	var b [32]byte
 	rand.Read(b[:])
 	token := base64.RawURLEncoding.EncodeToString(b[:])
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		now := fmtTime(s.now())
 		_, err := tx.ExecContext(ctx, `INSERT INTO console_sessions (token_hash, user_id, created_at, seen_at) VALUES (?, ?, ?, ?)`, tokenHash(token), userID, now, now)
 		return err
@@ -389,7 +384,7 @@ func (s *Store) ConsoleUser(ctx context.Context, token string, idle, maxAge time
 		return User{}, fmt.Errorf("console session: %w", ErrExpired)
 	}
 	if now.Sub(l) > time.Minute {
-		err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+		err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 			_, err := tx.ExecContext(ctx, `UPDATE console_sessions SET seen_at = ? WHERE token_hash = ?`, fmtTime(now), h)
 			return err
 		})
@@ -406,7 +401,7 @@ func (s *Store) ConsoleUser(ctx context.Context, token string, idle, maxAge time
 
 // EndConsoleSession removes a console session; an unknown one is no error.
 func (s *Store) EndConsoleSession(ctx context.Context, token string) error {
-	err := s.wr.do(ctx, func(ctx context.Context, tx *Tx) error {
+	err := s.wr.do(ctx, "", func(ctx context.Context, tx *Tx) error {
 		_, err := tx.ExecContext(ctx, `DELETE FROM console_sessions WHERE token_hash = ?`, tokenHash(token))
 		return err
 	})

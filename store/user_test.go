@@ -29,6 +29,7 @@ func TestUsers(t *testing.T) {
 		if u.Email != "ada.lindqvist@example.org" || u.Role != store.RoleOwner || !u.MustChange || !u.CanChange() {
 			t.Errorf("got %+v, want the lowercase address, owner, must change", u)
 		}
+		sqliteOnly(t)
 		var hash string
 		db, err := sql.Open("sqlite", "file:"+st.Path())
 		if err != nil {

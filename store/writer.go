@@ -14,21 +14,34 @@ var ErrClosed = errors.New("store is closed")
 // maxBatch bounds how many writes share one commit.
 const maxBatch = 128
 
+// retries is how often a write that met another replica's transaction in a
+// deadlock is run again before its error is returned.
+const retries = 3
+
 // A job is one public write: its statements run inside a savepoint of a
 // shared transaction, so that its failure undoes only its own changes.
 type job struct {
-	ctx context.Context
-	fn  func(ctx context.Context, tx *Tx) error
-	err chan error
+	ctx   context.Context
+	study string // the study it writes, or "" for none (accounts, logins)
+	fn    func(ctx context.Context, tx *Tx) error
+	err   chan error
 }
 
-// writer runs every write of the store on one connection, grouping the
-// writes that arrive together into one transaction and one commit. With
-// synchronous=FULL a commit costs a disk flush; many respondents replying at
-// once share it, while each caller still returns only after its own write is
-// durable.
+// writer runs every write of the store, grouping the writes that arrive
+// together into one transaction and one commit: a commit costs a disk flush,
+// and many respondents replying at once share it, while each caller still
+// returns only after its own write is durable.
+//
+// On SQLite one goroutine runs every batch on one connection. On PostgreSQL
+// a batch is split by study: each study's writes share a transaction that
+// first takes the study's lock (dialect.lockStudy), so that the chain's next
+// record and a stratum's next slot are read and written by one replica at a
+// time, and the studies' transactions run side by side. A transaction
+// holding one study's lock never waits for another's, so replicas cannot
+// deadlock on them.
 type writer struct {
 	db   *sql.DB
+	d    *dialect
 	st   *stmts
 	jobs chan *job // unbuffered: a job handed over is a job the writer will run
 	quit chan struct{}
@@ -36,18 +49,19 @@ type writer struct {
 	once sync.Once
 }
 
-func newWriter(db *sql.DB) *writer {
-	w := &writer{db: db, st: newStmts(db), jobs: make(chan *job), quit: make(chan struct{})}
+func newWriter(db *sql.DB, d *dialect, rb *rebinder) *writer {
+	w := &writer{db: db, d: d, st: newStmts(db, d, rb), jobs: make(chan *job), quit: make(chan struct{})}
 	w.wg.Add(1)
 	go w.loop()
 	return w
 }
 
-// do runs fn in the next batch and waits until that batch is committed. It
-// waits even if ctx ends meanwhile, so that a caller never reports failure
-// for a write that was in fact committed.
-func (w *writer) do(ctx context.Context, fn func(ctx context.Context, tx *Tx) error) error {
-	j := &job{ctx: ctx, fn: fn, err: make(chan error, 1)}
+// do runs fn, a write of study (or of no study: ""), in the next batch and
+// waits until that batch is committed. It waits even if ctx ends meanwhile,
+// so that a caller never reports failure for a write that was in fact
+// committed.
+func (w *writer) do(ctx context.Context, study string, fn func(ctx context.Context, tx *Tx) error) error {
+	j := &job{ctx: ctx, study: study, fn: fn, err: make(chan error, 1)}
 	select {
 	case w.jobs <- j:
 	case <-w.quit:
@@ -83,7 +97,27 @@ func (w *writer) loop() {
 				break gather
 			}
 		}
-		w.run(batch)
+		if w.d.lockStudy == "" {
+			w.run(batch)
+			continue
+		}
+		var order []string
+		groups := map[string][]*job{}
+		for _, j := range batch {
+			if _, ok := groups[j.study]; !ok {
+				order = append(order, j.study)
+			}
+			groups[j.study] = append(groups[j.study], j)
+		}
+		if len(order) == 1 {
+			w.run(batch)
+			continue
+		}
+		var wg sync.WaitGroup
+		for _, study := range order {
+			wg.Go(func() { w.run(groups[study]) })
+		}
+		wg.Wait()
 	}
 }
 
@@ -103,28 +137,43 @@ func (w *writer) run(batch []*job) {
 		fail(fmt.Errorf("begin: %w", err))
 		return
 	}
-	tx := &Tx{tx: sqltx, c: w.st}
+	tx := &Tx{tx: sqltx, c: w.st, d: w.d}
+	if study := batch[0].study; w.d.lockStudy != "" && study != "" {
+		// Taken outside the jobs' savepoints, so that it is held to the commit
+		// whatever job fails.
+		if _, err := tx.ExecContext(ctx, w.d.lockStudy, study); err != nil {
+			sqltx.Rollback()
+			fail(fmt.Errorf("lock study %q: %w", study, err))
+			return
+		}
+	}
 	for i, j := range batch {
 		if err := j.ctx.Err(); err != nil {
 			errs[i] = err
 			continue
 		}
-		if _, err := tx.ExecContext(ctx, "SAVEPOINT job"); err != nil {
-			errs[i] = fmt.Errorf("savepoint: %w", err)
-			continue
-		}
-		errs[i] = runJob(j, tx)
-		if errs[i] != nil {
-			if _, err := tx.ExecContext(ctx, "ROLLBACK TO job"); err != nil {
+		for try := 0; ; try++ {
+			if _, err := tx.ExecContext(ctx, "SAVEPOINT job"); err != nil {
 				sqltx.Rollback()
-				fail(fmt.Errorf("undo a failed write: %w (after %w)", err, errs[i]))
+				fail(fmt.Errorf("savepoint: %w", err))
 				return
 			}
-		}
-		if _, err := tx.ExecContext(ctx, "RELEASE job"); err != nil {
-			sqltx.Rollback()
-			fail(fmt.Errorf("release savepoint: %w", err))
-			return
+			errs[i] = runJob(j, tx)
+			if errs[i] != nil {
+				if _, err := tx.ExecContext(ctx, "ROLLBACK TO SAVEPOINT job"); err != nil {
+					sqltx.Rollback()
+					fail(fmt.Errorf("undo a failed write: %w (after %w)", err, errs[i]))
+					return
+				}
+			}
+			if _, err := tx.ExecContext(ctx, "RELEASE SAVEPOINT job"); err != nil {
+				sqltx.Rollback()
+				fail(fmt.Errorf("release savepoint: %w", err))
+				return
+			}
+			if errs[i] == nil || !isRetryable(errs[i]) || try == retries {
+				break
+			}
 		}
 	}
 	if err := sqltx.Commit(); err != nil {

@@ -1,0 +1,57 @@
+package store
+
+import (
+	"context"
+	"database/sql"
+	"errors"
+	"fmt"
+	"net/url"
+	"time"
+
+	"github.com/jackc/pgx/v5"
+	"github.com/jackc/pgx/v5/stdlib"
+)
+
+// openPostgres opens a PostgreSQL database through pgx's database/sql
+// adapter. Every replica of a server opens the same URL.
+func openPostgres(ctx context.Context, dsn string, opt Options) (*Store, error) {
+	name := redact(dsn)
+	if opt.Synchronous != "" {
+		return nil, fmt.Errorf("open database %s: --synchronous is SQLite's setting; PostgreSQL takes synchronous_commit from its server", name)
+	}
+	cfg, err := pgx.ParseConfig(dsn)
+	if err != nil {
+		return nil, fmt.Errorf("open database %s: %w", name, errors.Unwrap(err))
+	}
+	if u, err := url.Parse(dsn); err == nil && (u.Path == "" || u.Path == "/") && u.Query().Get("dbname") == "" {
+		return nil, fmt.Errorf("open database %s: the URL names no database; add it as the path, such as postgres://user@%s/trialogue", name, u.Host)
+	}
+	if cfg.ConnectTimeout == 0 {
+		cfg.ConnectTimeout = 10 * time.Second
+	}
+	// Writers: one transaction per study at a time, plus spare for the
+	// studies written at once and for goose's lock.
+	w := stdlib.OpenDB(*cfg)
+	w.SetMaxOpenConns(8)
+	w.SetMaxIdleConns(8)
+	r := stdlib.OpenDB(*cfg.Copy())
+	r.SetMaxOpenConns(16)
+	r.SetMaxIdleConns(16)
+	// Connections are renewed now and then, so that a restarted or failed
+	// over server is found again.
+	for _, db := range []*sql.DB{w, r} {
+		db.SetConnMaxLifetime(30 * time.Minute)
+		db.SetConnMaxIdleTime(5 * time.Minute)
+	}
+	return start(ctx, &Store{w: w, r: r, path: name, d: dialects[Postgres], rb: &rebinder{}, Now: time.Now}, name)
+}
+
+// redact is a PostgreSQL URL fit for messages and logs: its password is
+// masked.
+func redact(dsn string) string {
+	u, err := url.Parse(dsn)
+	if err != nil {
+		return "(a PostgreSQL URL that does not parse)"
+	}
+	return u.Redacted()
+}
