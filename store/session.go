@@ -46,7 +46,22 @@ type Assigner func(stratum string, slot int) (arm, armCode string)
 // Enter returns rid's session in the study, creating it when rid is new:
 // one transaction takes the stratum's next slot, so concurrent entries
 // never share or skip one. created reports whether the session is new.
+//
+// The writes of a study are serialized (on PostgreSQL across replicas by
+// the study's lock), so the session looked for is there if it was
+// committed. The unique (study, rid) constraint stands behind that: an
+// entry that still meets it is undone and tried again, and then finds the
+// session the other entry made.
 func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
+	for try := 0; ; try++ {
+		sess, created, err = s.enter(ctx, sv, stratum, r, assign)
+		if err == nil || !isUnique(err) || try == 2 {
+			return sess, created, err
+		}
+	}
+}
+
+func (s *Store) enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
 	covs, err := json.Marshal(r.Covariates)
 	if err != nil {
 		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)

@@ -65,13 +65,14 @@ func sqliteOnly(tb testing.TB) {
 
 // TestOnPostgres runs every test of this package again on PostgreSQL: the
 // same test functions, each on its own schema of the server that
-// TRIALOGUE_TEST_POSTGRES names.
+// TRIALOGUE_TEST_POSTGRES names (the TestPostgres ones are PostgreSQL's
+// own and ran already).
 func TestOnPostgres(t *testing.T) {
 	if onPostgres {
 		t.Skip("this is the PostgreSQL run")
 	}
 	pgtest.Server(t) // skips, or fails when PostgreSQL is required
-	args := []string{"-test.count=1", "-test.timeout=15m", "-test.skip=^TestOnPostgres$", "-test.v"}
+	args := []string{"-test.count=1", "-test.timeout=15m", "-test.skip=^(TestOnPostgres|TestPostgres.*)$", "-test.v"}
 	if testing.Short() {
 		args = append(args, "-test.short")
 	}
@@ -428,5 +429,80 @@ func TestWriterSurvivesPanic(t *testing.T) {
 	turns, err := st.Turns(ctx, sess.ID)
 	if err != nil || len(turns) != 1 || turns[0].Text != "a later reply" {
 		t.Fatalf("got %+v (%v), want only the later reply", turns, err)
+	}
+}
+
+// TestTwoStoresOneDatabase is two server replicas sharing a database: two
+// stores on it take entries at once, some respondents entering through
+// both at the same moment. Every rid gets one session, each stratum's
+// slots are used in order without gaps or repeats, and the chain and the
+// allocation audit hold.
+func TestTwoStoresOneDatabase(t *testing.T) {
+	ctx := context.Background()
+	path := filepath.Join(t.TempDir(), "shared.db")
+	a := mustOpen(t, path)
+	b := mustOpen(t, path)
+	def, src := mustStudy(t)
+	var svs [2]store.StudyVersion
+	var wg sync.WaitGroup
+	for i, st := range []*store.Store{a, b} { // both replicas start at once
+		wg.Go(func() {
+			var err error
+			if svs[i], err = st.RegisterStudy(ctx, def, src); err != nil {
+				t.Errorf("register on replica %d: %v", i, err)
+			}
+		})
+	}
+	wg.Wait()
+	if t.Failed() {
+		return
+	}
+	if svs[0].Version != svs[1].Version || string(svs[0].Seed) != string(svs[1].Seed) {
+		t.Fatalf("the replicas registered different studies: versions %d and %d", svs[0].Version, svs[1].Version)
+	}
+	as := assigner(t, def, svs[0])
+	const n = 120
+	var sessions sync.Map // rid → session id seen
+	for i := range n {
+		lean := []string{"left", "centre", "right"}[i%3]
+		rid := fmt.Sprintf("twin-%03d", i)
+		replicas := []*store.Store{[]*store.Store{a, b}[i%2]}
+		if i%5 == 0 {
+			replicas = []*store.Store{a, b} // the same rid through both at once
+		}
+		for _, st := range replicas {
+			wg.Go(func() {
+				sess, _, err := st.Enter(ctx, svs[0], "lean="+lean, respondent(rid, lean), as)
+				if err != nil {
+					t.Errorf("enter %s: %v", rid, err)
+					return
+				}
+				if prev, loaded := sessions.LoadOrStore(rid, sess.ID); loaded && prev.(int64) != sess.ID {
+					t.Errorf("rid %s got sessions %d and %d", rid, prev, sess.ID)
+				}
+			})
+		}
+	}
+	wg.Wait()
+	got, err := a.Sessions(ctx, def.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(got) != n {
+		t.Fatalf("got %d sessions, want %d (one per rid)", len(got), n)
+	}
+	next := map[string]int{}
+	for _, s := range got { // in order of entry
+		if s.Slot != next[s.Stratum] {
+			t.Fatalf("session %d: slot %d of %s, want %d (no gap, no repeat)", s.ID, s.Slot, s.Stratum, next[s.Stratum])
+		}
+		next[s.Stratum]++
+	}
+	d, err := b.LoadDataset(ctx, def.ID)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if r := d.Check(); !r.OK() {
+		t.Fatalf("the shared database does not verify: %+v", r)
 	}
 }
