@@ -6,6 +6,8 @@ import (
 	"errors"
 	"fmt"
 	"net/url"
+	"slices"
+	"strings"
 	"time"
 
 	"github.com/jackc/pgx/v5"
@@ -43,8 +45,37 @@ func openPostgres(ctx context.Context, dsn string, opt Options) (*Store, error) 
 		db.SetConnMaxLifetime(30 * time.Minute)
 		db.SetConnMaxIdleTime(5 * time.Minute)
 	}
-	return start(ctx, &Store{w: w, r: r, path: name, d: dialects[Postgres], rb: &rebinder{}, Now: time.Now}, name)
+	s, err := start(ctx, &Store{w: w, r: r, path: name, d: dialects[Postgres], rb: &rebinder{}, Now: time.Now}, name)
+	if err != nil {
+		return nil, oneLine(err)
+	}
+	return s, nil
 }
+
+// oneLine puts pgx's report of a failed connection, which lists every
+// address and attempt on a line of its own (often the same line twice,
+// once with TLS and once without), on one line.
+func oneLine(err error) error {
+	msg := err.Error()
+	if !strings.Contains(msg, "\n") {
+		return err
+	}
+	var parts []string
+	for _, l := range strings.Split(msg, "\n") {
+		if l = strings.TrimSpace(l); l != "" && !slices.Contains(parts, l) {
+			parts = append(parts, l)
+		}
+	}
+	return &lineError{msg: strings.Join(parts, " "), err: err}
+}
+
+type lineError struct {
+	msg string
+	err error
+}
+
+func (e *lineError) Error() string { return e.msg }
+func (e *lineError) Unwrap() error { return e.err }
 
 // redact is a PostgreSQL URL fit for messages and logs: its password is
 // masked.

@@ -18,7 +18,7 @@ func runArmsMap(ctx context.Context, args []string, stdout, stderr io.Writer) in
 	fs := flag.NewFlagSet("trialogue arms-map", flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	fs.Usage = func() { fmt.Fprintln(stderr, armsMapUsage); fs.PrintDefaults() }
-	db := fs.String("db", "trialogue.db", "SQLite database `file`")
+	db := fs.String("db", "trialogue.db", dbUsage)
 	id := fs.String("study", "", "study `id`")
 	perms := fs.Int("permutations", 1000, "label permutations for the classification p-value (0 skips them)")
 	seed := fs.Uint64("seed", 1, "`seed` of the folds, permutations and randomized SVD")

@@ -17,7 +17,7 @@ import (
 func runBackup(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("trialogue backup", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "trialogue.db", "SQLite database `file` to copy")
+	db := fs.String("db", "trialogue.db", "SQLite database `file` to copy (PostgreSQL: use pg_dump)")
 	out := fs.String("out", "", "new `file` to write the copy to (must not exist)")
 	if err := fs.Parse(args); err != nil {
 		if errors.Is(err, flag.ErrHelp) {
@@ -27,6 +27,10 @@ func runBackup(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	}
 	if fs.NArg() > 0 || *out == "" {
 		fmt.Fprintln(stderr, "usage: trialogue backup --db PATH --out FILE")
+		return exitUsage
+	}
+	if store.EngineOf(*db) == store.Postgres {
+		fmt.Fprintln(stderr, "trialogue: backup copies a SQLite file; back up a PostgreSQL database with pg_dump (README: Several replicas on PostgreSQL)")
 		return exitUsage
 	}
 	size, err := store.Backup(ctx, *db, *out)

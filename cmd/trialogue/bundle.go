@@ -17,7 +17,7 @@ import (
 func runBundle(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("trialogue bundle", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "", "SQLite database `file`")
+	db := fs.String("db", "", dbUsage)
 	study := fs.String("study", "", "study `id`")
 	out := fs.String("out", "", "bundle `file` to write (.tar.gz)")
 	release := fs.Bool("release", false, "a shareable copy: respondent ids removed, personal details in text masked")
@@ -70,7 +70,7 @@ func runBundle(ctx context.Context, args []string, stdout, stderr io.Writer) int
 func runClose(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("trialogue close", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "", "SQLite database `file`")
+	db := fs.String("db", "", dbUsage)
 	study := fs.String("study", "", "study `id`")
 	if ok, code := parseFlags(fs, args); !ok {
 		return code

@@ -170,7 +170,7 @@ func runCode(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	}
 	fs := flag.NewFlagSet("trialogue code verify", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "trialogue.db", "SQLite database `file`")
+	db := fs.String("db", "trialogue.db", dbUsage)
 	study := fs.String("study", "", "study `id`")
 	if err := fs.Parse(args[1:]); err != nil {
 		if errors.Is(err, flag.ErrHelp) {

@@ -11,12 +11,27 @@ import (
 	"trialogue/store"
 )
 
-// openDB opens an existing database for a command. A missing file is a
-// usage error (most likely a mistyped path, and opening would create an
-// empty database); a file that cannot be opened is a failure.
-func openDB(ctx context.Context, path string, stderr io.Writer) (*store.Store, int) {
+// dbUsage is how every command's --db flag describes itself.
+const dbUsage = "database: a SQLite `file`, or a postgres:// URL"
+
+// dbExists reports whether --db names a database that is there: a SQLite
+// file must exist (a mistyped path would otherwise create an empty
+// database); a PostgreSQL URL is checked by connecting to it.
+func dbExists(path string, stderr io.Writer) bool {
+	if store.EngineOf(path) == store.Postgres {
+		return true
+	}
 	if _, err := os.Stat(path); err != nil {
 		fmt.Fprintf(stderr, "trialogue: database %s: %v\n", path, err)
+		return false
+	}
+	return true
+}
+
+// openDB opens an existing database for a command. A missing file is a
+// usage error; a database that cannot be opened is a failure.
+func openDB(ctx context.Context, path string, stderr io.Writer) (*store.Store, int) {
+	if !dbExists(path, stderr) {
 		return nil, exitUsage
 	}
 	st, err := store.Open(ctx, path, store.Options{})

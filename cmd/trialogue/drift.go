@@ -30,7 +30,7 @@ type driftReport struct {
 func runDrift(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("trialogue drift", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "", "SQLite database `file`")
+	db := fs.String("db", "", dbUsage)
 	study := fs.String("study", "", "study `id`")
 	runs := fs.Int("runs", 0, "times each probe is played (default: the study's drift.runs, or 5)")
 	if ok, code := parseFlags(fs, args); !ok {

@@ -45,7 +45,7 @@ func parseEffectsFlags(args []string, stderr io.Writer) (*effectsFlags, error) {
 	fs.Usage = func() { fmt.Fprintln(stderr, effectsUsage); fs.PrintDefaults() }
 	f := &effectsFlags{}
 	var outcome, covs, control string
-	fs.StringVar(&f.db, "db", "trialogue.db", "SQLite database `file`")
+	fs.StringVar(&f.db, "db", "trialogue.db", dbUsage)
 	fs.StringVar(&f.study, "study", "", "study `id`")
 	fs.StringVar(&f.outcomes, "outcomes", "", "outcome `file` exported by the survey (CSV, comma or semicolon)")
 	fs.StringVar(&f.spec.ID, "id", "", "outcome-file `column` holding the respondent id (rid)")

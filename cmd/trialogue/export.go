@@ -19,7 +19,7 @@ func runExport(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	fs := flag.NewFlagSet("trialogue export", flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	fs.Usage = func() { fmt.Fprintln(stderr, exportUsage); fs.PrintDefaults() }
-	db := fs.String("db", "", "SQLite database `file`")
+	db := fs.String("db", "", dbUsage)
 	id := fs.String("study", "", "study `id`")
 	out := fs.String("out", "", "`folder` to write the files into (created if needed; files of an earlier export are replaced)")
 	pilot := fs.Bool("include-pilot", false, "include the sessions marked pilot")

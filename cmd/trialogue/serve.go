@@ -24,10 +24,10 @@ import (
 // Config says where Trialogue runs; the study files say what it runs.
 type Config struct {
 	Addr            string        // listen address
-	DB              string        // SQLite file
+	DB              string        // SQLite file or postgres:// URL
 	Studies         []string      // study files
 	Demo            bool          // serve the stand-in survey pages and point returns at them
-	Synchronous     string        // SQLite synchronous pragma: FULL or NORMAL
+	Synchronous     string        // SQLite synchronous pragma: FULL (when empty) or NORMAL
 	LogFormat       string        // text or json
 	ShutdownTimeout time.Duration // how long replies in flight may take to finish on SIGTERM
 	MetricsAddr     string        // where Prometheus /metrics is served; empty: nowhere
@@ -62,17 +62,17 @@ func (l *stringList) Set(v string) error { *l = append(*l, v); return nil }
 // ParseFlags reads the serve or demo command's flags.
 func (m *Main) ParseFlags(args []string, demo bool, stderr io.Writer) error {
 	name := "serve"
-	c := Config{Addr: "127.0.0.1:8080", DB: "trialogue.db", Synchronous: "FULL", LogFormat: "text", ShutdownTimeout: 30 * time.Second}
+	c := Config{Addr: "127.0.0.1:8080", DB: "trialogue.db", LogFormat: "text", ShutdownTimeout: 30 * time.Second}
 	if demo {
 		name, c.Demo, c.DB = "demo", true, "trialogue-demo.db"
 	}
 	fs := flag.NewFlagSet("trialogue "+name, flag.ContinueOnError)
 	fs.SetOutput(stderr)
 	fs.StringVar(&c.Addr, "addr", c.Addr, "listen `address`")
-	fs.StringVar(&c.DB, "db", c.DB, "SQLite database `file` (created if missing)")
+	fs.StringVar(&c.DB, "db", c.DB, "database: a SQLite `file` (created if missing), or a postgres:// URL that replicas share")
 	var studies stringList
 	fs.Var(&studies, "study", "study `file` to serve (repeatable)")
-	fs.StringVar(&c.Synchronous, "synchronous", c.Synchronous, "SQLite synchronous `mode`: FULL (durable across power loss) or NORMAL")
+	fs.StringVar(&c.Synchronous, "synchronous", c.Synchronous, "SQLite synchronous `mode`: FULL (default; durable across power loss) or NORMAL")
 	fs.StringVar(&c.LogFormat, "log-format", c.LogFormat, "log `format`: text or json")
 	fs.DurationVar(&c.ShutdownTimeout, "shutdown-timeout", c.ShutdownTimeout, "time replies in flight may take to finish on SIGTERM")
 	c.Limits = server.Limits{EntryRate: 2, EntryBurst: 20, ReplyRate: 1, ReplyBurst: 5}
@@ -210,11 +210,11 @@ func (m *Main) Run(ctx context.Context) error {
 			return err
 		}
 	}
-	m.Logger.Info("serving", slog.String("addr", ln.Addr().String()), slog.String("db", m.Config.DB), slog.Int("studies", len(defs)))
+	m.Logger.Info("serving", slog.String("addr", ln.Addr().String()), slog.String("db", st.Path()), slog.Int("studies", len(defs)))
 	if m.Config.Demo {
 		d := defs[0].def
 		ex := d.Example()
-		fmt.Fprintf(m.Stdout, "Trialogue demo: study %q (%s), scripted responder, database %s\n\n", d.ID, d.Title, m.Config.DB)
+		fmt.Fprintf(m.Stdout, "Trialogue demo: study %q (%s), scripted responder, database %s\n\n", d.ID, d.Title, st.Path())
 		fmt.Fprintf(m.Stdout, "  Stand-in survey page (embeds the respondent page in an iframe):\n    %s/demo/host\n\n", hostSite)
 		fmt.Fprintf(m.Stdout, "  A respondent link (open it directly):\n    %s/s/%s?rid=demo-%d", frameSite, d.ID, time.Now().Unix()%100000)
 		for _, c := range d.Covariates {

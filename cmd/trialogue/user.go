@@ -7,7 +7,6 @@ import (
 	"flag"
 	"fmt"
 	"io"
-	"os"
 	"strings"
 	"text/tabwriter"
 
@@ -31,7 +30,7 @@ func runUser(ctx context.Context, args []string, stdin io.Reader, stdout, stderr
 	sub := args[0]
 	fs := flag.NewFlagSet("trialogue user "+sub, flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "", "SQLite database `file`")
+	db := fs.String("db", "", dbUsage)
 	role := fs.String("role", "", "the account's role: owner (changes studies) or viewer (reads and exports)")
 	fromStdin := fs.Bool("password-stdin", false, "read the password from the first line of standard input instead of generating one")
 	// The address comes first (trialogue user add EMAIL --role ...), and
@@ -97,8 +96,7 @@ func runUser(ctx context.Context, args []string, stdin io.Reader, stdout, stderr
 	// Accounts may be added before the first start of the server, which
 	// creates the database; reset and list need one.
 	if sub != "add" {
-		if _, err := os.Stat(*db); err != nil {
-			fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
+		if !dbExists(*db, stderr) {
 			return exitUsage
 		}
 	}

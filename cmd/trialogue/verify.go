@@ -25,7 +25,7 @@ const (
 func runVerify(ctx context.Context, args []string, stdout, stderr io.Writer) int {
 	fs := flag.NewFlagSet("trialogue verify", flag.ContinueOnError)
 	fs.SetOutput(stderr)
-	db := fs.String("db", "", "SQLite database `file`")
+	db := fs.String("db", "", dbUsage)
 	study := fs.String("study", "", "study `id`")
 	fs.Usage = func() {
 		fmt.Fprintln(stderr, "usage: trialogue verify --db PATH --study ID\n       trialogue verify BUNDLE.tar.gz")
@@ -36,8 +36,7 @@ func runVerify(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	var d *store.Dataset
 	switch {
 	case *db != "" && *study != "" && fs.NArg() == 0:
-		if _, err := os.Stat(*db); err != nil {
-			fmt.Fprintf(stderr, "trialogue: database %s: %v\n", *db, err)
+		if !dbExists(*db, stderr) {
 			return exitUsage
 		}
 		st, err := store.Open(ctx, *db, store.Options{})
