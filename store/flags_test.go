@@ -143,7 +143,8 @@ func rawDB(t *testing.T, st *store.Store) *sql.DB {
 	t.Helper()
 	driver, dsn := "sqlite", "file:"+st.Path()+"?_pragma=busy_timeout(10000)&_pragma=foreign_keys(1)"
 	if onPostgres {
-		driver, dsn = "pgx", st.Path() // the test server trusts its local role: no password is masked
+		v, _ := pgDSN.Load(st.Path())
+		driver, dsn = "pgx", v.(string)
 	}
 	db, err := sql.Open(driver, dsn)
 	if err != nil {

@@ -29,6 +29,9 @@ var onPostgres = os.Getenv("TRIALOGUE_STORE_ENGINE") == "postgres"
 // that a test reopening "its file" reopens its schema.
 var pgPaths sync.Map
 
+// pgDSN maps a store's Path (its URL, password masked) back to the URL.
+var pgDSN sync.Map
+
 // mustOpen opens a store on a file in the test's temporary folder (or, on
 // PostgreSQL, a fresh schema standing for that file).
 func mustOpen(tb testing.TB, path string) *store.Store {
@@ -46,6 +49,9 @@ func mustOpen(tb testing.TB, path string) *store.Store {
 		dsn, opt = v.(string), store.Options{}
 	}
 	st, err := store.Open(context.Background(), dsn, opt)
+	if onPostgres {
+		pgDSN.Store(st.Path(), dsn)
+	}
 	if err != nil {
 		tb.Fatalf("open store: %v", err)
 	}
