@@ -512,3 +512,90 @@ func TestTwoStoresOneDatabase(t *testing.T) {
 		t.Fatalf("the shared database does not verify: %+v", r)
 	}
 }
+
+// replicas opens n stores on one database (one file, or one PostgreSQL
+// schema in the engine's run) with the demo study registered, as n server
+// replicas would.
+func replicas(b *testing.B, n int) ([]*store.Store, store.StudyVersion, store.Assigner) {
+	path := filepath.Join(b.TempDir(), "shared.db")
+	def, src := mustStudy(b)
+	var sts []*store.Store
+	var sv store.StudyVersion
+	for range n {
+		st := mustOpen(b, path)
+		var err error
+		if sv, err = st.RegisterStudy(context.Background(), def, src); err != nil {
+			b.Fatal(err)
+		}
+		sts = append(sts, st)
+	}
+	return sts, sv, assigner(b, def, sv)
+}
+
+// benchEnterReplicas measures assignments from 32 respondents at once,
+// spread over n stores sharing one database.
+func benchEnterReplicas(b *testing.B, n int) {
+	ctx := context.Background()
+	sts, sv, as := replicas(b, n)
+	leans := []string{"left", "centre", "right"}
+	var seq atomic.Int64
+	b.SetParallelism(16) // 32 goroutines on 2 cores
+	b.ResetTimer()
+	b.RunParallel(func(pb *testing.PB) {
+		for pb.Next() {
+			i := seq.Add(1)
+			lean := leans[i%3]
+			if _, _, err := sts[int(i)%n].Enter(ctx, sv, "lean="+lean, respondent(fmt.Sprintf("r%d", i), lean), as); err != nil {
+				b.Error(err)
+				return
+			}
+		}
+	})
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "assignments/s")
+}
+
+func BenchmarkEnterOneReplica(b *testing.B)  { benchEnterReplicas(b, 1) }
+func BenchmarkEnterTwoReplicas(b *testing.B) { benchEnterReplicas(b, 2) }
+
+// benchTurnsReplicas measures durable turns (a respondent's reply and the
+// model's answer, each its own commit, as the server writes them) from 32
+// respondents at once, spread over n stores sharing one database. Each
+// respondent replies six times, then the next one enters (its entry is
+// timed too, as in a study).
+func benchTurnsReplicas(b *testing.B, n int) {
+	ctx := context.Background()
+	sts, sv, as := replicas(b, n)
+	allow := func([]store.Turn, bool) error { return nil }
+	var seq atomic.Int64
+	b.SetParallelism(16)
+	b.ResetTimer()
+	b.RunParallel(func(pb *testing.PB) {
+		var sess store.Session
+		var st *store.Store
+		for k := 0; pb.Next(); k++ {
+			if k%6 == 0 {
+				i := seq.Add(1)
+				st = sts[int(i)%n]
+				var err error
+				if sess, _, err = st.Enter(ctx, sv, "lean=left", respondent(fmt.Sprintf("t%d", i), "left"), as); err != nil {
+					b.Error(err)
+					return
+				}
+			}
+			a, err := st.AddReply(ctx, sess, "a reply about the cable car", fmt.Sprintf("c%d", k%6), allow)
+			if err != nil {
+				b.Error(err)
+				return
+			}
+			if _, err := st.AddModelTurn(ctx, store.Turn{SessionID: sess.ID, Index: a.Turn.Index + 1, Text: "an answer",
+				StartedAt: a.Turn.CreatedAt, StudyHash: sess.StudyHash}); err != nil {
+				b.Error(err)
+				return
+			}
+		}
+	})
+	b.ReportMetric(2*float64(b.N)/b.Elapsed().Seconds(), "turns/s")
+}
+
+func BenchmarkTurnsOneReplica(b *testing.B)  { benchTurnsReplicas(b, 1) }
+func BenchmarkTurnsTwoReplicas(b *testing.B) { benchTurnsReplicas(b, 2) }
