@@ -65,24 +65,41 @@ func RIDKey(secret []byte, rid string) string {
 	return hex.EncodeToString(codes.MAC(secret, []byte("trialogue/rid/v1\x00"+rid)))[:32]
 }
 
-// appendChain adds a record to the study's chain inside a write.
+// chainHead is the last record of a study's chain: its number and hash.
+type chainHead struct {
+	seq  int64
+	hash string
+}
+
+// appendChain adds a record to the study's chain inside a write. The head
+// is read once per transaction and then kept in it: the transaction holds
+// the study's writes (the single writer on SQLite, the study's lock on
+// PostgreSQL), so no one else can move it meanwhile.
 func appendChain(ctx context.Context, tx *Tx, study, kind string, at time.Time, data any) error {
-	var seq int64
-	prev := Genesis
-	err := tx.QueryRowContext(ctx, `SELECT seq, hash FROM chain WHERE study_id = ? ORDER BY seq DESC LIMIT 1`, study).Scan(&seq, &prev)
-	if err != nil && !errors.Is(err, sql.ErrNoRows) {
-		return fmt.Errorf("chain head of %q: %w", study, err)
+	head, ok := tx.heads[study]
+	if !ok {
+		head.hash = Genesis
+		err := tx.QueryRowContext(ctx, `SELECT seq, hash FROM chain WHERE study_id = ? ORDER BY seq DESC LIMIT 1`, study).Scan(&head.seq, &head.hash)
+		if err != nil && !errors.Is(err, sql.ErrNoRows) {
+			return fmt.Errorf("chain head of %q: %w", study, err)
+		}
 	}
+	seq, prev := head.seq, head.hash
 	c := chainContent{Study: study, Seq: seq + 1, Kind: kind, At: fmtTime(at), Data: data}
 	content, err := canon.Marshal(c)
 	if err != nil {
 		return fmt.Errorf("chain record: %w", err)
 	}
+	hash := ChainHash(prev, content)
 	_, err = tx.ExecContext(ctx, `INSERT INTO chain (study_id, seq, kind, at, content, prev, hash) VALUES (?, ?, ?, ?, ?, ?, ?)`,
-		study, c.Seq, kind, c.At, string(content), prev, ChainHash(prev, content))
+		study, c.Seq, kind, c.At, string(content), prev, hash)
 	if err != nil {
 		return fmt.Errorf("append to chain of %q: %w", study, err)
 	}
+	if tx.heads == nil {
+		tx.heads = map[string]chainHead{}
+	}
+	tx.heads[study] = chainHead{c.Seq, hash}
 	return nil
 }
 

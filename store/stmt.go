@@ -78,9 +78,10 @@ func (c *stmts) close() error {
 
 // Tx is a write transaction whose statements come from the writer's cache.
 type Tx struct {
-	tx *sql.Tx
-	c  *stmts
-	d  *dialect
+	tx    *sql.Tx
+	c     *stmts
+	d     *dialect
+	heads map[string]chainHead // chain heads this transaction wrote (appendChain)
 }
 
 // QueryContext runs a query inside the transaction.

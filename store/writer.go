@@ -160,6 +160,7 @@ func (w *writer) run(batch []*job) {
 			}
 			errs[i] = runJob(j, tx)
 			if errs[i] != nil {
+				tx.heads = nil // the job's chain records are undone with it
 				if _, err := tx.ExecContext(ctx, "ROLLBACK TO SAVEPOINT job"); err != nil {
 					sqltx.Rollback()
 					fail(fmt.Errorf("undo a failed write: %w (after %w)", err, errs[i]))
