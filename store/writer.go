@@ -121,10 +121,66 @@ func (w *writer) loop() {
 	}
 }
 
-// run executes a batch in one transaction. Statements run with a context
-// that is never canceled: interrupting SQLite mid-statement can roll back the
-// whole transaction, and with it other callers' writes.
+// begin starts a write transaction; for a study's writes on PostgreSQL it
+// first takes the study's lock, outside any savepoint, so that it is held
+// to the commit whatever job fails.
+func (w *writer) begin(ctx context.Context, study string) (*Tx, error) {
+	sqltx, err := w.db.BeginTx(ctx, nil)
+	if err != nil {
+		return nil, fmt.Errorf("begin: %w", err)
+	}
+	tx := &Tx{tx: sqltx, c: w.st, d: w.d}
+	if w.d.lockStudy != "" && study != "" {
+		if _, err := tx.ExecContext(ctx, w.d.lockStudy, study); err != nil {
+			sqltx.Rollback()
+			return nil, fmt.Errorf("lock study %q: %w", study, err)
+		}
+	}
+	return tx, nil
+}
+
+// runOne runs a job that arrived alone in its own transaction: its failure
+// undoes the whole transaction, so it needs no savepoint (two round trips
+// less to PostgreSQL).
+func (w *writer) runOne(j *job) {
+	if err := j.ctx.Err(); err != nil {
+		j.err <- err
+		return
+	}
+	for try := 0; ; try++ {
+		err := w.alone(j)
+		if err == nil || !isRetryable(err) || try == retries {
+			j.err <- err
+			return
+		}
+	}
+}
+
+func (w *writer) alone(j *job) error {
+	ctx := context.Background()
+	tx, err := w.begin(ctx, j.study)
+	if err != nil {
+		return err
+	}
+	if err := runJob(j, tx); err != nil {
+		tx.tx.Rollback()
+		return err
+	}
+	if err := tx.tx.Commit(); err != nil {
+		return fmt.Errorf("commit: %w", err)
+	}
+	return nil
+}
+
+// run executes a batch in one transaction, each job in a savepoint.
+// Statements run with a context that is never canceled: interrupting
+// SQLite mid-statement can roll back the whole transaction, and with it
+// other callers' writes.
 func (w *writer) run(batch []*job) {
+	if len(batch) == 1 {
+		w.runOne(batch[0])
+		return
+	}
 	errs := make([]error, len(batch))
 	fail := func(err error) {
 		for _, j := range batch {
@@ -132,21 +188,12 @@ func (w *writer) run(batch []*job) {
 		}
 	}
 	ctx := context.Background()
-	sqltx, err := w.db.BeginTx(ctx, nil)
+	tx, err := w.begin(ctx, batch[0].study)
 	if err != nil {
-		fail(fmt.Errorf("begin: %w", err))
+		fail(err)
 		return
 	}
-	tx := &Tx{tx: sqltx, c: w.st, d: w.d}
-	if study := batch[0].study; w.d.lockStudy != "" && study != "" {
-		// Taken outside the jobs' savepoints, so that it is held to the commit
-		// whatever job fails.
-		if _, err := tx.ExecContext(ctx, w.d.lockStudy, study); err != nil {
-			sqltx.Rollback()
-			fail(fmt.Errorf("lock study %q: %w", study, err))
-			return
-		}
-	}
+	sqltx := tx.tx
 	for i, j := range batch {
 		if err := j.ctx.Err(); err != nil {
 			errs[i] = err
