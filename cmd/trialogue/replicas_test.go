@@ -223,15 +223,20 @@ func TestReplicasShareOneDatabase(t *testing.T) {
 			}
 		}
 	}
+	ratio := def.Scheme().Arms
+	sum := 0
+	for _, r := range ratio {
+		sum += r.Weight
+	}
 	complete := 0
 	for k, b := range blocks {
 		if b.used != b.size {
 			continue
 		}
 		complete++
-		for _, r := range def.Scheme().Arms {
-			// The ratio is 1:1:1, so each arm fills a third of a block.
-			if want := b.size * r.Weight / 3; b.arms[r.Arm] != want {
+		for _, r := range ratio {
+			// Each arm fills its share of the block: a third here (1:1:1).
+			if want := b.size * r.Weight / sum; b.arms[r.Arm] != want {
 				t.Errorf("stratum %s block %d (size %d): arm %s %d times, want %d", k.stratum, k.block, b.size, r.Arm, b.arms[r.Arm], want)
 			}
 		}
