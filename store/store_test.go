@@ -530,14 +530,25 @@ func replicas(b *testing.B, n int) ([]*store.Store, store.StudyVersion, store.As
 		sts = append(sts, st)
 	}
 	as := assigner(b, def, sv)
-	// A study under way: 2,000 respondents entered before the clock starts,
-	// and on PostgreSQL the statistics autovacuum would have gathered by
-	// then (migration 00008), so that the planner sees the tables as they are.
+	// A study under way: 600 respondents have entered and replied twice
+	// before the clock starts, and on PostgreSQL the statistics autovacuum
+	// would have gathered by then (migration 00008), so that the planner
+	// sees the tables as they are in fielding.
+	allow := func([]store.Turn, bool) error { return nil }
 	var wg sync.WaitGroup
 	for w := range 32 {
 		wg.Go(func() {
-			for i := w; i < 2000; i += 32 {
-				if _, _, err := sts[0].Enter(context.Background(), sv, "lean=right", respondent(fmt.Sprintf("w%d", i), "right"), as); err != nil {
+			for i := w; i < 600; i += 32 {
+				st := sts[0]
+				sess, _, err := st.Enter(context.Background(), sv, "lean=right", respondent(fmt.Sprintf("w%d", i), "right"), as)
+				for k := 0; err == nil && k < 2; k++ {
+					var a store.Added
+					if a, err = st.AddReply(context.Background(), sess, "an earlier reply", fmt.Sprintf("c%d", k), allow); err == nil {
+						_, err = st.AddModelTurn(context.Background(), store.Turn{SessionID: sess.ID, Index: a.Turn.Index + 1, Text: "an earlier answer",
+							StartedAt: a.Turn.CreatedAt, StudyHash: sess.StudyHash})
+					}
+				}
+				if err != nil {
 					b.Error(err)
 					return
 				}
