@@ -608,4 +608,42 @@ func TestStreamingRespectsLayoutAndFallback(t *testing.T) {
 			t.Errorf("got reply %q, want the model's answer", got)
 		}
 	})
+	t.Run("OKServerFaultKeepsTheSend", func(t *testing.T) {
+		// The first reply is answered with the server's fault (as when its
+		// database is out of reach: 500, no rule, no state); sending again
+		// must be the same reply under the same client_id, so that a reply
+		// the server stored before the fault is not stored twice.
+		if err := chromedp.Do(e.tab, addScript(`(function () {
+			var real = window.fetch, failed = false;
+			window.__ids = [];
+			window.fetch = function (url, opt) {
+				if (/\/reply$/.test(String(url)) && opt && opt.body) {
+					window.__ids.push(JSON.parse(opt.body).client_id);
+					if (!failed) {
+						failed = true;
+						return Promise.resolve(new Response('{"error":"internal error","rule":"","field":"","reference":"T1"}',
+							{status: 500, headers: {"Content-Type": "application/json"}}));
+					}
+				}
+				return real.apply(this, arguments);
+			};
+		})();`)); err != nil {
+			t.Fatal(err)
+		}
+		e.enter(t, "FAULT-1", "")
+		e.typeAndSend(t, "Does the ferry run at night?")
+		e.wait(t, `document.getElementById("alert").textContent.length > 0 && !document.getElementById("status").classList.contains("busy")`)
+		if got := e.eval(t, `document.getElementById("reply").value`); got != "Does the ferry run at night?" {
+			t.Fatalf("after the fault the box holds %q, want the reply kept", got)
+		}
+		e.eval(t, `document.getElementById("reply").form.requestSubmit(); ""`)
+		e.wait(t, settled(2))
+		var ids []string
+		if err := json.Unmarshal([]byte(e.eval(t, `JSON.stringify(window.__ids)`)), &ids); err != nil {
+			t.Fatal(err)
+		}
+		if len(ids) != 2 || ids[0] == "" || ids[0] != ids[1] {
+			t.Fatalf("client ids sent: %q; want the same id twice", ids)
+		}
+	})
 }

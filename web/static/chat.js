@@ -212,7 +212,11 @@
         busy = false;
         if (d.state) { syncLog(d.state.messages); render(d.state); } else if (state) render(state);
         var failed = d.state && d.state.failed;
-        if (!d.state || !failed) put(pendingKey, null);
+        // A fault on the server's side (no rule, no state: the database was
+        // out of reach, say) keeps the pending send, so that sending again
+        // is the same reply under the same id, stored once.
+        var fault = !d.rule && !d.state;
+        if (!fault && (!d.state || !failed)) put(pendingKey, null);
         showAlert(failed ? T.model_failed : ruleText(d.rule));
         toBottom();
         if (failed) retry.focus();
