@@ -9,6 +9,7 @@ import (
 	"fmt"
 	"io"
 	"net/http"
+	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
@@ -120,7 +121,13 @@ func startProc(t *testing.T, bin string, args ...string) *proc {
 	base, ok := <-addr
 	if !ok {
 		<-p.exited
-		t.Fatalf("trialogue %v did not start: %v\n%s", args, p.err, p.stderr.String())
+		shown := slices.Clone(args)
+		for i, a := range shown {
+			if u, err := url.Parse(a); err == nil && u.User != nil {
+				shown[i] = u.Redacted() // a database URL's password stays out of the log
+			}
+		}
+		t.Fatalf("trialogue %v did not start: %v\n%s", shown, p.err, p.stderr.String())
 	}
 	p.base = base
 	return p
