@@ -108,9 +108,8 @@ func (s *Server) respond(w http.ResponseWriter, r *http.Request, req *request, t
 	stream := strings.Contains(r.Header.Get("Accept"), "text/event-stream")
 	var ev *eventWriter
 	if stream {
-		if ev = newEventWriter(w); ev == nil {
-			stream = false
-		}
+		ev = newEventWriter(w)
+		defer ev.close()
 	}
 	if p := store.Progress(arm, turns, req.sess.Finished()); !p.Owed || p.Finished {
 		st := s.state(req, turns, time.Time{})
@@ -171,11 +170,11 @@ func (s *Server) answer(w http.ResponseWriter, r *http.Request, req *request, tu
 		return
 	}
 	if strings.Contains(r.Header.Get("Accept"), "text/event-stream") {
-		if ev = newEventWriter(w); ev != nil {
-			ev.event("chunk", map[string]string{"text": t.Text})
-			ev.event("done", a)
-			return
-		}
+		ev = newEventWriter(w)
+		defer ev.close()
+		ev.Chunk(t.Text)
+		ev.event("done", a) // one write with the chunk
+		return
 	}
 	w.Header().Set("Server-Timing", "model;dur="+strconv.FormatInt(modelTime.Milliseconds(), 10))
 	writeJSON(w, http.StatusOK, a)
