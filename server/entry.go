@@ -37,7 +37,11 @@ func (s *Server) handleEntry(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	stratum := st.Def.StratumKey(resp)
-	sess, created, err := s.store.Enter(r.Context(), st.Version, stratum, resp, func(stratum string, slot int) (string, string) {
+	enter := s.store.Enter
+	if synthetic { // marked in the transaction that creates the session
+		enter = s.store.EnterSynthetic
+	}
+	sess, created, err := enter(r.Context(), st.Version, stratum, resp, func(stratum string, slot int) (string, string) {
 		arm := st.Plan.Slot(stratum, slot).Arm
 		return arm, st.Def.Arms[arm].Code
 	})
@@ -52,12 +56,6 @@ func (s *Server) handleEntry(w http.ResponseWriter, r *http.Request) {
 	if err != nil {
 		s.fail(w, r, err)
 		return
-	}
-	if created && synthetic {
-		if err := s.store.MarkSynthetic(r.Context(), sess.ID); err != nil {
-			s.fail(w, r, err)
-			return
-		}
 	}
 	if created {
 		s.assignedMetric(st.Def.ID, sess.Arm, synthetic)

@@ -219,16 +219,23 @@ func TestSynthetic(t *testing.T) {
 	st, def, sv, as := mustDemo(t)
 	var ids []int64
 	for i := range 6 {
-		sess, _, err := st.Enter(ctx, sv, "lean=left", respondent(fmt.Sprintf("S-%d", i), "left"), as)
+		enter := st.Enter
+		if i < 2 {
+			enter = st.EnterSynthetic // marked as it is created
+		}
+		sess, _, err := enter(ctx, sv, "lean=left", respondent(fmt.Sprintf("S-%d", i), "left"), as)
 		if err != nil {
 			t.Fatal(err)
 		}
 		ids = append(ids, sess.ID)
 	}
-	for _, id := range ids[:2] {
-		if err := st.MarkSynthetic(ctx, id); err != nil {
-			t.Fatal(err)
-		}
+	// Entering again changes no mark: a synthetic key on a real
+	// respondent's second entry does not make it synthetic, nor the reverse.
+	if again, created, err := st.EnterSynthetic(ctx, sv, "lean=left", respondent("S-5", "left"), as); err != nil || created || again.ID != ids[5] {
+		t.Fatalf("re-entry: got %d created %v (%v), want session %d again", again.ID, created, err, ids[5])
+	}
+	if again, created, err := st.Enter(ctx, sv, "lean=left", respondent("S-0", "left"), as); err != nil || created || again.ID != ids[0] {
+		t.Fatalf("re-entry: got %d created %v (%v), want session %d again", again.ID, created, err, ids[0])
 	}
 	for _, tc := range []struct {
 		name string

@@ -53,15 +53,26 @@ type Assigner func(stratum string, slot int) (arm, armCode string)
 // entry that still meets it is undone and tried again, and then finds the
 // session the other entry made.
 func (s *Store) Enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
+	return s.enterRetry(ctx, sv, stratum, r, assign, false)
+}
+
+// EnterSynthetic is Enter for a synthetic respondent (trialogue simulate):
+// a new session is marked synthetic in the same transaction that creates
+// it. An existing session is returned as it is.
+func (s *Store) EnterSynthetic(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
+	return s.enterRetry(ctx, sv, stratum, r, assign, true)
+}
+
+func (s *Store) enterRetry(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner, synthetic bool) (sess Session, created bool, err error) {
 	for try := 0; ; try++ {
-		sess, created, err = s.enter(ctx, sv, stratum, r, assign)
+		sess, created, err = s.enter(ctx, sv, stratum, r, assign, synthetic)
 		if err == nil || !isUnique(err) || try == 2 {
 			return sess, created, err
 		}
 	}
 }
 
-func (s *Store) enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner) (sess Session, created bool, err error) {
+func (s *Store) enter(ctx context.Context, sv StudyVersion, stratum string, r arms.Respondent, assign Assigner, synthetic bool) (sess Session, created bool, err error) {
 	covs, err := json.Marshal(r.Covariates)
 	if err != nil {
 		return Session{}, false, fmt.Errorf("enter study %q: %w", sv.ID, err)
@@ -89,9 +100,9 @@ func (s *Store) enter(ctx context.Context, sv StudyVersion, stratum string, r ar
 		now := s.now()
 		sess = Session{StudyID: sv.ID, RID: r.RID, Token: codes.NewToken(), Version: sv.Version, StudyHash: sv.Hash,
 			Stratum: stratum, Slot: slot, Arm: arm, ArmCode: code, Covariates: r.Covariates, CreatedAt: now, Language: r.Language}
-		err = tx.QueryRowContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language, pilot)
-			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''), ?) RETURNING id`,
-			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language, pilot).Scan(&sess.ID)
+		err = tx.QueryRowContext(ctx, `INSERT INTO sessions (study_id, rid, token, version, study_hash, stratum, slot, arm, arm_code, covariates, created_at, language, pilot, synthetic)
+			VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULLIF(?, ''), ?, ?) RETURNING id`,
+			sv.ID, r.RID, sess.Token, sv.Version, sv.Hash, stratum, slot, arm, code, string(covs), fmtTime(now), r.Language, pilot, boolInt(synthetic)).Scan(&sess.ID)
 		if err != nil {
 			return err
 		}
