@@ -401,18 +401,17 @@ type finishAnswerJSON struct {
 	ArmCode string `json:"arm_code"`
 }
 
-// checkCrashDatabase reads the database after both runs.
-func checkCrashDatabase(t *testing.T, db, studyPath string, resp []*crashRespondent) {
+// readBack opens the database (a SQLite path or a PostgreSQL URL) after a
+// run of the real server and reads a study back: the store (closed when the
+// test ends), the allocation plan of the stored seed, and every session.
+func readBack(t *testing.T, db string, def *arms.Study) (*store.Store, *assign.Plan, []store.Session) {
+	t.Helper()
 	ctx := context.Background()
 	st, err := store.Open(ctx, db, store.Options{})
 	if err != nil {
 		t.Fatal(err)
 	}
-	defer st.Close()
-	def, _, err := arms.ParseFile(studyPath)
-	if err != nil {
-		t.Fatal(err)
-	}
+	t.Cleanup(func() { st.Close() })
 	sv, err := st.Study(ctx, def.ID)
 	if err != nil {
 		t.Fatal(err)
@@ -425,6 +424,17 @@ func checkCrashDatabase(t *testing.T, db, studyPath string, resp []*crashRespond
 	if err != nil {
 		t.Fatal(err)
 	}
+	return st, plan, sessions
+}
+
+// checkCrashDatabase reads the database after both runs.
+func checkCrashDatabase(t *testing.T, db, studyPath string, resp []*crashRespondent) {
+	ctx := context.Background()
+	def, _, err := arms.ParseFile(studyPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	st, plan, sessions := readBack(t, db, def)
 	if len(sessions) != len(resp) {
 		t.Fatalf("sessions: got %d, want %d (one per respondent)", len(sessions), len(resp))
 	}

@@ -13,7 +13,6 @@ import (
 	"time"
 
 	"trialogue/arms"
-	"trialogue/arms/assign"
 	"trialogue/server/simulate"
 	"trialogue/store"
 )
@@ -98,23 +97,7 @@ func TestLoad(t *testing.T) {
 func checkLoadDatabase(t *testing.T, db string, def *arms.Study, replies int) {
 	t.Helper()
 	ctx := context.Background()
-	st, err := store.Open(ctx, db, store.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
-	sv, err := st.Study(ctx, def.ID)
-	if err != nil {
-		t.Fatal(err)
-	}
-	plan, err := assign.NewPlan(sv.Seed, def.Scheme())
-	if err != nil {
-		t.Fatal(err)
-	}
-	sessions, err := st.Sessions(ctx, def.ID)
-	if err != nil {
-		t.Fatal(err)
-	}
+	st, plan, sessions := readBack(t, db, def)
 	if len(sessions) != loadRespondents {
 		t.Fatalf("sessions: got %d, want %d (one per respondent)", len(sessions), loadRespondents)
 	}

@@ -21,7 +21,6 @@ import (
 	"time"
 
 	"trialogue/arms"
-	"trialogue/arms/assign"
 	"trialogue/store"
 	"trialogue/store/pgtest"
 )
@@ -156,28 +155,11 @@ func TestReplicasShareOneDatabase(t *testing.T) {
 		t.FailNow()
 	}
 
-	ctx := context.Background()
-	st, err := store.Open(ctx, db, store.Options{})
-	if err != nil {
-		t.Fatal(err)
-	}
-	defer st.Close()
 	def, _, err := arms.ParseFile(studyPath)
 	if err != nil {
 		t.Fatal(err)
 	}
-	sv, err := st.Study(ctx, def.ID)
-	if err != nil {
-		t.Fatal(err)
-	}
-	plan, err := assign.NewPlan(sv.Seed, def.Scheme())
-	if err != nil {
-		t.Fatal(err)
-	}
-	sessions, err := st.Sessions(ctx, def.ID)
-	if err != nil {
-		t.Fatal(err)
-	}
+	_, plan, sessions := readBack(t, db, def)
 	if len(sessions) != n {
 		t.Fatalf("sessions: got %d, want %d (one per respondent)", len(sessions), n)
 	}
