@@ -13,6 +13,8 @@ import (
 	"strings"
 	"testing"
 	"time"
+
+	"trialogue/store/pgtest"
 )
 
 const demoStudy = "../../testdata/demo-study.yaml"
@@ -141,7 +143,19 @@ func TestRestartMidConversation(t *testing.T) {
 	if testing.Short() {
 		t.Skip("runs the demo's scripted delays")
 	}
-	db := filepath.Join(t.TempDir(), "restart.db")
+	restartMidConversation(t, filepath.Join(t.TempDir(), "restart.db"))
+}
+
+// TestDemoOnPostgres: the same with `trialogue demo --db postgres://...`,
+// the completion code checked by `trialogue code verify` on the URL.
+func TestDemoOnPostgres(t *testing.T) {
+	if testing.Short() {
+		t.Skip("runs the demo's scripted delays")
+	}
+	restartMidConversation(t, pgtest.Database(t))
+}
+
+func restartMidConversation(t *testing.T, db string) {
 	m, base := startMain(t, db)
 	rid, token := enterChat(t, base)
 	c := client{t, base}
