@@ -153,16 +153,18 @@ func (m *Main) Run(ctx context.Context) error {
 			return fmt.Errorf("TLS certificate and key: %w", err)
 		}
 	}
+	// The database first: nothing listens until it answers and its schema
+	// is current, so a load balancer never sees a half-started replica.
+	st, err := store.Open(ctx, m.Config.DB, store.Options{Synchronous: m.Config.Synchronous})
+	if err != nil {
+		return err
+	}
 	ln, err := net.Listen("tcp", m.Config.Addr)
 	if err != nil {
+		st.Close()
 		return fmt.Errorf("listen on %s: %w", m.Config.Addr, err)
 	}
 	m.Listener = ln
-	st, err := store.Open(ctx, m.Config.DB, store.Options{Synchronous: m.Config.Synchronous})
-	if err != nil {
-		ln.Close()
-		return err
-	}
 	m.Store = st
 	m.Server = server.New(st, assets, server.Config{Logger: m.Logger, Demo: m.Config.Demo,
 		Limits: m.Config.Limits, SyntheticKey: m.Config.SyntheticKey,
