@@ -1,6 +1,7 @@
 package store_test
 
 import (
+	"bytes"
 	"context"
 	"errors"
 	"fmt"
@@ -630,3 +631,42 @@ func benchTurnsReplicas(b *testing.B, n int) {
 
 func BenchmarkTurnsOneReplica(b *testing.B)  { benchTurnsReplicas(b, 1) }
 func BenchmarkTurnsTwoReplicas(b *testing.B) { benchTurnsReplicas(b, 2) }
+
+// BenchmarkEnterFourStudiesTwoReplicas is BenchmarkEnterTwoReplicas with
+// the respondents spread over four studies, whose writes take four locks
+// instead of one: beside it, it shows what serializing a study's writes
+// costs.
+func BenchmarkEnterFourStudiesTwoReplicas(b *testing.B) {
+	ctx := context.Background()
+	sts, _, _ := replicas(b, 2)
+	def, src := mustStudy(b)
+	type study struct {
+		sv store.StudyVersion
+		as store.Assigner
+	}
+	var studies []study
+	for k := range 4 {
+		d := *def
+		d.ID = fmt.Sprintf("%s-%d", def.ID, k)
+		sv, err := sts[0].RegisterStudy(ctx, &d, bytes.Replace(src, []byte("id: "+def.ID), []byte("id: "+d.ID), 1))
+		if err != nil {
+			b.Fatal(err)
+		}
+		studies = append(studies, study{sv, assigner(b, &d, sv)})
+	}
+	leans := []string{"left", "centre", "right"}
+	var seq atomic.Int64
+	b.SetParallelism(16)
+	b.ResetTimer()
+	b.RunParallel(func(pb *testing.PB) {
+		for pb.Next() {
+			i := seq.Add(1)
+			s, lean := studies[i%4], leans[i%3]
+			if _, _, err := sts[int(i/4)%2].Enter(ctx, s.sv, "lean="+lean, respondent(fmt.Sprintf("f%d", i), lean), s.as); err != nil {
+				b.Error(err)
+				return
+			}
+		}
+	})
+	b.ReportMetric(float64(b.N)/b.Elapsed().Seconds(), "assignments/s")
+}
