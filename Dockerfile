@@ -3,6 +3,9 @@
 # Demo:  docker run --rm -p 8080:8080 -v trialogue-data:/data trialogue
 # Serve: docker run --rm -p 8080:8080 -v trialogue-data:/data -v "$PWD/study.yaml:/study.yaml:ro" \
 #          -e TRIALOGUE_MODEL_KEY trialogue serve --addr 0.0.0.0:8080 --db /data/trialogue.db --study /study.yaml
+# Replica on PostgreSQL (no volume needed; the password in PGPASSWORD, not in the URL):
+#        docker run --rm -p 8080:8080 -v "$PWD/study.yaml:/study.yaml:ro" -e TRIALOGUE_MODEL_KEY -e PGPASSWORD \
+#          trialogue serve --addr 0.0.0.0:8080 --db postgres://trialogue@db.internal:5432/trialogue --study /study.yaml
 
 FROM golang:1.26-bookworm AS build
 WORKDIR /src
