@@ -14,6 +14,13 @@ import (
 	"github.com/jackc/pgx/v5/stdlib"
 )
 
+// How many connections a store opens to PostgreSQL, at most: a replica
+// needs MaxWriteConns+MaxReadConns of the server's max_connections.
+const (
+	MaxWriteConns = 4
+	MaxReadConns  = 8
+)
+
 // openPostgres opens a PostgreSQL database through pgx's database/sql
 // adapter. Every replica of a server opens the same URL.
 func openPostgres(ctx context.Context, dsn string, opt Options) (*Store, error) {
@@ -31,14 +38,15 @@ func openPostgres(ctx context.Context, dsn string, opt Options) (*Store, error) 
 	if cfg.ConnectTimeout == 0 {
 		cfg.ConnectTimeout = 10 * time.Second
 	}
-	// Writers: one transaction per study at a time, plus spare for the
-	// studies written at once and for goose's lock.
+	// At most 12 connections per replica (PostgreSQL's default
+	// max_connections is 100): writers, one transaction per study written at
+	// once and goose's lock; readers, for pages and state.
 	w := stdlib.OpenDB(*cfg)
-	w.SetMaxOpenConns(8)
-	w.SetMaxIdleConns(8)
+	w.SetMaxOpenConns(MaxWriteConns)
+	w.SetMaxIdleConns(MaxWriteConns)
 	r := stdlib.OpenDB(*cfg.Copy())
-	r.SetMaxOpenConns(16)
-	r.SetMaxIdleConns(16)
+	r.SetMaxOpenConns(MaxReadConns)
+	r.SetMaxIdleConns(MaxReadConns)
 	// Connections are renewed now and then, so that a restarted or failed
 	// over server is found again.
 	for _, db := range []*sql.DB{w, r} {
