@@ -30,7 +30,10 @@ func openPostgres(ctx context.Context, dsn string, opt Options) (*Store, error) 
 	}
 	cfg, err := pgx.ParseConfig(dsn)
 	if err != nil {
-		return nil, fmt.Errorf("open database %s: %w", name, errors.Unwrap(err))
+		if inner := errors.Unwrap(err); inner != nil {
+			err = inner // the URL is named once, password masked, below
+		}
+		return nil, fmt.Errorf("open database %s: %w", name, err)
 	}
 	if u, err := url.Parse(dsn); err == nil && (u.Path == "" || u.Path == "/") && u.Query().Get("dbname") == "" {
 		return nil, fmt.Errorf("open database %s: the URL names no database; add it as the path, such as postgres://user@%s/trialogue", name, u.Host)
