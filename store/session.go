@@ -69,6 +69,7 @@ func (s *Store) enterRetry(ctx context.Context, sv StudyVersion, stratum string,
 		if err == nil || !isUnique(err) || try == 2 {
 			return sess, created, err
 		}
+		s.entryRetries.Add(1)
 	}
 }
 

@@ -11,6 +11,7 @@ import (
 	"io"
 	"log/slog"
 	"runtime"
+	"sync/atomic"
 	"time"
 
 	"github.com/pressly/goose/v3"
@@ -42,6 +43,8 @@ type Store struct {
 	rb *rebinder // placeholders rewritten for PostgreSQL
 
 	path string // the SQLite file, or the PostgreSQL URL without its password
+
+	entryRetries atomic.Int64 // entries that met a unique constraint and ran again
 
 	// Now is the clock, a seam for tests.
 	Now func() time.Time
