@@ -325,6 +325,12 @@ func TestTurns(t *testing.T) {
 			t.Fatalf("got %v, want ErrConflict", err)
 		}
 	})
+	t.Run("ErrModelTurnOfUnknownSession", func(t *testing.T) {
+		_, err := st.AddModelTurn(ctx, store.Turn{SessionID: 987654, Index: 0, Text: "an answer", StartedAt: time.Now(), StudyHash: sess.StudyHash})
+		if !errors.Is(err, store.ErrNotFound) {
+			t.Fatalf("got %v, want ErrNotFound", err)
+		}
+	})
 	t.Run("OKSurvivesReopen", func(t *testing.T) {
 		if err := st.Close(); err != nil {
 			t.Fatal(err)

@@ -3,6 +3,7 @@ package store
 import (
 	"context"
 	"database/sql"
+	"errors"
 	"fmt"
 	"time"
 
@@ -187,7 +188,13 @@ func (s *Store) AddModelTurn(ctx context.Context, t Turn) (Turn, error) {
 	}
 	err = s.wr.do(ctx, key, func(ctx context.Context, tx *Tx) error {
 		var n int
-		if err := tx.QueryRowContext(ctx, `SELECT COUNT(*) FROM turns WHERE session_id = ?`, t.SessionID).Scan(&n); err != nil {
+		var study string
+		err := tx.QueryRowContext(ctx, `SELECT (SELECT COUNT(*) FROM turns WHERE session_id = s.id), s.study_id FROM sessions s WHERE s.id = ?`,
+			t.SessionID).Scan(&n, &study)
+		if errors.Is(err, sql.ErrNoRows) {
+			return fmt.Errorf("session %d: %w", t.SessionID, ErrNotFound)
+		}
+		if err != nil {
 			return err
 		}
 		if n != t.Index {
@@ -195,10 +202,6 @@ func (s *Store) AddModelTurn(ctx context.Context, t Turn) (Turn, error) {
 		}
 		t.CreatedAt = s.now()
 		if err := insertTurn(ctx, tx, t); err != nil {
-			return err
-		}
-		var study string
-		if err := tx.QueryRowContext(ctx, `SELECT study_id FROM sessions WHERE id = ?`, t.SessionID).Scan(&study); err != nil {
 			return err
 		}
 		return appendChain(ctx, tx, study, EventTurn, t.CreatedAt, turnEvent(t))
