@@ -270,25 +270,33 @@ func TestCrashMidChat(t *testing.T) {
 		t.Fatalf("no reply was in flight at the kill: the test did not test a crash mid-reply")
 	}
 
-	p2 := startProc(t, bin, args...)
+	resumeAllThenStop(t, startProc(t, bin, args...), "the restarted server", hc, resp, db, studyPath)
+}
+
+// resumeAllThenStop resumes every respondent through the server p (after
+// the kill of the one they were on), stops p with SIGTERM, which must exit
+// 0, and checks the database.
+func resumeAllThenStop(t *testing.T, p *proc, name string, hc *http.Client, resp []*crashRespondent, db, studyPath string) {
+	t.Helper()
 	errs := make([]error, len(resp))
+	var wg sync.WaitGroup
 	for i, r := range resp {
-		wg.Go(func() { errs[i] = resumeAfterCrash(p2.base, hc, r) })
+		wg.Go(func() { errs[i] = resumeAfterCrash(p.base, hc, r) })
 	}
 	wg.Wait()
 	for i, err := range errs {
 		if err != nil {
-			t.Errorf("%s after the restart: %v", resp[i].rid, err)
+			t.Errorf("%s through %s: %v", resp[i].rid, name, err)
 		}
 	}
 	if t.Failed() {
 		t.FailNow()
 	}
 	hc.CloseIdleConnections()
-	p2.cmd.Process.Signal(syscall.SIGTERM)
-	<-p2.exited
-	if p2.err != nil {
-		t.Fatalf("second server on SIGTERM: got %v, want exit 0\n%s", p2.err, p2.stderr.String())
+	p.cmd.Process.Signal(syscall.SIGTERM)
+	<-p.exited
+	if p.err != nil {
+		t.Fatalf("%s on SIGTERM: got %v, want exit 0\n%s", name, p.err, p.stderr.String())
 	}
 	checkCrashDatabase(t, db, studyPath, resp)
 }
@@ -691,6 +699,14 @@ func TestBackupCommand(t *testing.T) {
 		var o, e bytes.Buffer
 		if code := run(context.Background(), []string{"backup", "--db", db}, &o, &e); code != exitUsage {
 			t.Fatalf("got exit %d, want 2", code)
+		}
+	})
+	t.Run("ErrPostgresURL", func(t *testing.T) {
+		var o, e bytes.Buffer
+		pg := "postgres://trialogue@127.0.0.1:5432/trialogue"
+		code := run(context.Background(), []string{"backup", "--db", pg, "--out", filepath.Join(t.TempDir(), "pg.db")}, &o, &e)
+		if code != exitUsage || !strings.Contains(e.String(), "pg_dump") {
+			t.Fatalf("got exit %d %q, want 2 pointing to pg_dump", code, e.String())
 		}
 	})
 }

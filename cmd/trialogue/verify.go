@@ -36,15 +36,12 @@ func runVerify(ctx context.Context, args []string, stdout, stderr io.Writer) int
 	var d *store.Dataset
 	switch {
 	case *db != "" && *study != "" && fs.NArg() == 0:
-		if !dbExists(*db, stderr) {
-			return exitUsage
-		}
-		st, err := store.Open(ctx, *db, store.Options{})
-		if err != nil {
-			fmt.Fprintf(stderr, "trialogue: %v\n", err)
-			return exitFail
+		st, code := openDB(ctx, *db, stderr)
+		if st == nil {
+			return code
 		}
 		defer st.Close()
+		var err error
 		if d, err = st.LoadDataset(ctx, *study); err != nil {
 			fmt.Fprintf(stderr, "trialogue: %v\n", err)
 			if errors.Is(err, store.ErrNotFound) {
