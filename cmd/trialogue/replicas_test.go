@@ -305,26 +305,7 @@ func TestReplicaKilledMidLoad(t *testing.T) {
 		t.Fatalf("no reply was in flight at replica A when it was killed: the test did not test a kill mid-reply")
 	}
 
-	errs := make([]error, n)
-	for i, r := range resp {
-		wg.Go(func() { errs[i] = resumeAfterCrash(b.base, hc, r) })
-	}
-	wg.Wait()
-	for i, err := range errs {
-		if err != nil {
-			t.Errorf("%s through replica B: %v", resp[i].rid, err)
-		}
-	}
-	if t.Failed() {
-		t.FailNow()
-	}
-	hc.CloseIdleConnections()
-	b.cmd.Process.Signal(syscall.SIGTERM)
-	<-b.exited
-	if b.err != nil {
-		t.Fatalf("replica B on SIGTERM: got %v, want exit 0\n%s", b.err, b.stderr.String())
-	}
-	checkCrashDatabase(t, db, studyPath, resp)
+	resumeAllThenStop(t, b, "replica B", hc, resp, db, studyPath)
 }
 
 // dbProxy forwards TCP connections to the database and can cut them: it
