@@ -46,6 +46,8 @@ type Store struct {
 
 	entryRetries atomic.Int64 // entries that met a unique constraint and ran again
 
+	ready *goose.Provider // reads the schema version for Ready, made once at open
+
 	// Now is the clock, a seam for tests.
 	Now func() time.Time
 }
@@ -118,6 +120,11 @@ func start(ctx context.Context, s *Store, name string) (*Store, error) {
 		s.Close()
 		return nil, fmt.Errorf("open database %s: %w", name, err)
 	}
+	var err error
+	if s.ready, err = s.provider(s.r, false); err != nil {
+		s.Close()
+		return nil, fmt.Errorf("open database %s: %w", name, err)
+	}
 	s.wr = newWriter(s.w, s.d, s.rb)
 	s.rs = newStmts(s.r, s.d, s.rb)
 	return s, nil
@@ -167,11 +174,7 @@ func (s *Store) migrate(ctx context.Context) error {
 
 // Ready reports whether the database answers and its schema is current.
 func (s *Store) Ready(ctx context.Context) error {
-	p, err := s.provider(s.r, false)
-	if err != nil {
-		return fmt.Errorf("ready: %w", err)
-	}
-	pending, err := p.HasPending(ctx)
+	pending, err := s.ready.HasPending(ctx)
 	if err != nil {
 		return fmt.Errorf("ready: %w", err)
 	}
