@@ -293,12 +293,17 @@
         showAlert("");
         say(T.finished);
         var d = x.d;
-        if (window.parent !== window) {
-          try {
-            window.parent.postMessage({ type: "trialogue:complete", rid: d.rid, code: d.code, arm_code: d.arm_code }, app.dataset.parentOrigin || "*");
-          } catch (e) { /* a wrong origin is the study's to fix; navigation still happens */ }
-        }
-        try { window.top.location.href = d.return_url; } catch (e) { window.location.href = d.return_url; }
+        var leave = function () {
+          try { window.top.location.href = d.return_url; } catch (e) { window.location.href = d.return_url; }
+        };
+        if (window.parent === window) { leave(); return; }
+        try {
+          window.parent.postMessage({ type: "trialogue:complete", rid: d.rid, code: d.code, arm_code: d.arm_code }, app.dataset.parentOrigin || "*");
+        } catch (e) { /* a wrong origin is the study's to fix; navigation still happens */ }
+        // A message is delivered as a task of the survey's page; moving its
+        // window at once can unload it first. A moment's wait lets the survey
+        // take the message before the return address replaces it.
+        setTimeout(leave, 300);
       })
       .catch(function () { cont.disabled = false; showAlert(T.network_failed); });
   });
